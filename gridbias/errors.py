@@ -1,0 +1,34 @@
+"""Exception classes. Each specific error also inherits the matching builtin."""
+
+__all__ = [
+    "GridBiasError",
+    "GridError",
+    "ParameterError",
+    "CheckpointError",
+    "LockError",
+    "CVLogError",
+]
+
+
+class GridBiasError(Exception):
+    """Base class of every error gridbias raises on purpose."""
+
+
+class GridError(GridBiasError, ValueError):
+    """An invalid grid specification or points that do not fit the grid."""
+
+
+class ParameterError(GridBiasError, ValueError):
+    """An invalid bias, wall or adapter parameter."""
+
+
+class CheckpointError(GridBiasError, ValueError):
+    """A checkpoint file that is missing, truncated, altered, foreign or incompatible."""
+
+
+class LockError(GridBiasError, RuntimeError):
+    """A checkpoint path already held by another live process."""
+
+
+class CVLogError(GridBiasError, ValueError):
+    """A CV log file that is not ours, is damaged, or does not fit the request."""
