@@ -1,0 +1,353 @@
+"""Numba kernels (private). Plain arrays and scalars in, caller-owned arrays out; no globals, no Python objects.
+
+Representation of a bias on a ``d``-dimensional grid (``d <= 3``): one array ``coef`` of shape
+``(2**d, n0, n1, n2)`` (missing axes padded with size 1). ``coef[0]`` holds the node values;
+``coef[m]`` holds the spline derivative of the values along every axis whose bit is set in ``m``, in
+index units (dV/di = spacing * dV/ds). Between nodes the bias is the tensor-product cubic Hermite
+interpolant of these node values and derivatives. With natural splines on non-periodic axes and
+periodic splines on periodic axes, this is the function OpenMM's ``Continuous{1,2,3}DFunction``
+applies to the same node values (measured in DESIGN.md; checked against OpenMM in the tests).
+
+Hills are separable products of 1-D factors, and the spline derivative is a linear operator acting on
+one axis at a time, so a hill updates every ``coef[m]`` by an outer product of per-axis factors:
+the Gaussian factor ``g_a`` on axes not in ``m`` and its spline slope ``S g_a`` on axes in ``m``.
+Deposits therefore cost O(footprint) instead of a full-grid spline refresh.
+"""
+
+import numpy as np
+from numba import njit
+
+# Slope factors below this fraction of their largest entry are dropped. The spline response of a
+# Gaussian decays by a factor 2 - sqrt(3) = 0.268 per node outside the footprint, so this keeps
+# the increment exact to far below double-precision rounding of the values it is added to.
+_SLOPE_TAIL = 1e-18
+
+
+@njit(cache=True, nogil=True)
+def spline_slopes(y, periodic, out):
+    """Node slopes (index units) of the natural or periodic cubic spline through ``y``.
+
+    y, out : (n,) float. Natural: second derivative zero at both ends (n >= 3). Periodic: ``y`` holds
+    one period of n >= 2 distinct nodes (the node after the last is the first).
+    """
+    n = y.shape[0]
+    if periodic:
+        if n == 2:
+            out[0] = 0.0
+            out[1] = 0.0
+            return
+        # Cyclic system m[i-1] + 4 m[i] + m[i+1] = 3 (y[i+1] - y[i-1]) by Sherman-Morrison:
+        # A = B + u v^T with u = (gam, 0, ..., 0, 1), v = (1, 0, ..., 0, 1/gam).
+        gam = -4.0
+        rhs = np.empty(n)
+        u = np.zeros(n)
+        for i in range(n):
+            rhs[i] = 3.0 * (y[(i + 1) % n] - y[(i - 1) % n])
+        u[0] = gam
+        u[n - 1] = 1.0
+        diag = np.full(n, 4.0)
+        diag[0] = 4.0 - gam
+        diag[n - 1] = 4.0 - 1.0 / gam
+        yy = np.empty(n)
+        zz = np.empty(n)
+        _thomas_unit_offdiag(diag, rhs, yy)
+        _thomas_unit_offdiag(diag, u, zz)
+        fact = (yy[0] + yy[n - 1] / gam) / (1.0 + zz[0] + zz[n - 1] / gam)
+        for i in range(n):
+            out[i] = yy[i] - fact * zz[i]
+    else:
+        diag = np.full(n, 4.0)
+        diag[0] = 2.0
+        diag[n - 1] = 2.0
+        rhs = np.empty(n)
+        rhs[0] = 3.0 * (y[1] - y[0])
+        for i in range(1, n - 1):
+            rhs[i] = 3.0 * (y[i + 1] - y[i - 1])
+        rhs[n - 1] = 3.0 * (y[n - 1] - y[n - 2])
+        _thomas_unit_offdiag(diag, rhs, out)
+
+
+@njit(cache=True, nogil=True)
+def _thomas_unit_offdiag(diag, rhs, out):
+    """Solve a tridiagonal system with unit off-diagonals. diag, rhs, out: (n,)."""
+    n = diag.shape[0]
+    cp = np.empty(n)
+    cp[0] = 1.0 / diag[0]
+    out[0] = rhs[0] / diag[0]
+    for i in range(1, n):
+        den = diag[i] - cp[i - 1]
+        cp[i] = 1.0 / den
+        out[i] = (rhs[i] - out[i - 1]) / den
+    for i in range(n - 2, -1, -1):
+        out[i] -= cp[i] * out[i + 1]
+
+
+@njit(cache=True, nogil=True)
+def _hill_factor(n, periodic, lower, spacing, center, sigma, cutoff, g_out, idx_out):
+    """Gaussian factor of one axis on its n nodes. Returns the footprint size; fills idx_out[:count].
+
+    g_out : (n,) zeroed by the caller; entries within ``cutoff * sigma`` of the centre (minimum image
+    on periodic axes) get exp(-d^2 / (2 sigma^2)).
+    """
+    u = (center - lower) / spacing
+    r = cutoff * sigma / spacing
+    count = 0
+    if periodic:
+        u = u - n * np.floor(u / n)
+        if 2.0 * r + 1.0 >= n:
+            for j in range(n):
+                d = j - u
+                d -= n * np.floor(d / n + 0.5)
+                if abs(d) <= r:
+                    z = d * spacing / sigma
+                    g_out[j] = np.exp(-0.5 * z * z)
+                    idx_out[count] = j
+                    count += 1
+        else:
+            for i in range(int(np.ceil(u - r)), int(np.floor(u + r)) + 1):
+                j = i % n
+                z = (i - u) * spacing / sigma
+                g_out[j] = np.exp(-0.5 * z * z)
+                idx_out[count] = j
+                count += 1
+    else:
+        i0 = max(0, int(np.ceil(u - r)))
+        i1 = min(n - 1, int(np.floor(u + r)))
+        for i in range(i0, i1 + 1):
+            z = (i - u) * spacing / sigma
+            g_out[i] = np.exp(-0.5 * z * z)
+            idx_out[count] = i
+            count += 1
+    return count
+
+
+@njit(cache=True, nogil=True)
+def _slope_support(s, idx_out):
+    """Indices where |s| exceeds _SLOPE_TAIL of its maximum. Returns the count."""
+    smax = 0.0
+    for i in range(s.shape[0]):
+        if abs(s[i]) > smax:
+            smax = abs(s[i])
+    count = 0
+    if smax == 0.0:
+        return 0
+    tol = _SLOPE_TAIL * smax
+    for i in range(s.shape[0]):
+        if abs(s[i]) > tol:
+            idx_out[count] = i
+            count += 1
+    return count
+
+
+@njit(cache=True, nogil=True)
+def _locate(ndim, lower3, spacing3, bins3, periodic3, s, cell, frac):
+    """Cell index and fraction per axis. Returns False if s is outside a non-periodic axis."""
+    for a in range(ndim):
+        u = (s[a] - lower3[a]) / spacing3[a]
+        nb = bins3[a]
+        if periodic3[a]:
+            u = u - nb * np.floor(u / nb)
+            c = int(np.floor(u))
+            if c >= nb:  # u rounded up to exactly nb
+                c = nb - 1
+            cell[a] = c
+            frac[a] = u - c
+        else:
+            if not (u >= 0.0 and u <= nb):
+                return False
+            c = int(np.floor(u))
+            if c >= nb:
+                c = nb - 1
+            cell[a] = c
+            frac[a] = u - c
+    return True
+
+
+@njit(cache=True, nogil=True)
+def eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, grad_out):
+    """Grid bias (kJ/mol) at one CV point s (d,); writes dV/ds into grad_out (d,).
+
+    Zero (and zero gradient) outside a non-periodic axis, as OpenMM's tables are.
+    """
+    for a in range(ndim):
+        grad_out[a] = 0.0
+    cell = np.zeros(3, dtype=np.int64)
+    frac = np.zeros(3)
+    if not _locate(ndim, lower3, spacing3, bins3, periodic3, s, cell, frac):
+        return 0.0
+    # Hermite basis per axis: h[a, order, corner] and its t-derivative dh[a, order, corner].
+    h = np.empty((3, 2, 2))
+    dh = np.empty((3, 2, 2))
+    for a in range(ndim):
+        t = frac[a]
+        t2 = t * t
+        t3 = t2 * t
+        h[a, 0, 0] = 2.0 * t3 - 3.0 * t2 + 1.0
+        h[a, 0, 1] = -2.0 * t3 + 3.0 * t2
+        h[a, 1, 0] = t3 - 2.0 * t2 + t
+        h[a, 1, 1] = t3 - t2
+        dh[a, 0, 0] = 6.0 * t2 - 6.0 * t
+        dh[a, 0, 1] = -6.0 * t2 + 6.0 * t
+        dh[a, 1, 0] = 3.0 * t2 - 4.0 * t + 1.0
+        dh[a, 1, 1] = 3.0 * t2 - 2.0 * t
+    ncorner = 1 << ndim
+    node = np.zeros(3, dtype=np.int64)
+    energy = 0.0
+    g0 = 0.0
+    g1 = 0.0
+    g2 = 0.0
+    for corner in range(ncorner):
+        for a in range(ndim):
+            k = cell[a] + ((corner >> a) & 1)
+            if periodic3[a] and k == bins3[a]:
+                k = 0
+            node[a] = k
+        for m in range(ncorner):
+            c = coef4[m, node[0], node[1], node[2]]
+            if c == 0.0:
+                continue
+            w = 1.0
+            w0 = 1.0
+            w1 = 1.0
+            w2 = 1.0
+            for a in range(ndim):
+                order = (m >> a) & 1
+                cb = (corner >> a) & 1
+                hv = h[a, order, cb]
+                dv = dh[a, order, cb]
+                w *= hv
+                w0 *= dv if a == 0 else hv
+                w1 *= dv if a == 1 else hv
+                w2 *= dv if a == 2 else hv
+            energy += c * w
+            g0 += c * w0
+            g1 += c * w1
+            g2 += c * w2
+    grad_out[0] = g0 / spacing3[0]
+    if ndim > 1:
+        grad_out[1] = g1 / spacing3[1]
+    if ndim > 2:
+        grad_out[2] = g2 / spacing3[2]
+    return energy
+
+
+@njit(cache=True, nogil=True)
+def wall_point(cv, bound, k, sign, power, s, grad_out):
+    """Energy (kJ/mol) of all walls at s (d,); ADDS their gradient into grad_out (d,).
+
+    Wall w acts when sign[w] * (s[cv[w]] - bound[w]) > 0 with energy k[w] * dist**power[w].
+    """
+    energy = 0.0
+    for w in range(cv.shape[0]):
+        dist = sign[w] * (s[cv[w]] - bound[w])
+        if dist > 0.0:
+            energy += k[w] * dist ** power[w]
+            grad_out[cv[w]] += sign[w] * k[w] * power[w] * dist ** (power[w] - 1.0)
+    return energy
+
+
+@njit(cache=True, nogil=True)
+def evaluate_points(coef4, ndim, lower3, spacing3, bins3, periodic3,
+                    wall_cv, wall_bound, wall_k, wall_sign, wall_power,
+                    use_grid, use_walls, points, energy_out, grad_out):
+    """Batched bias at points (n, d): energy_out (n,), grad_out (n, d). Grid and/or walls."""
+    g = np.empty(ndim)
+    for p in range(points.shape[0]):
+        s = points[p]
+        e = 0.0
+        if use_grid:
+            e = eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, g)
+        else:
+            for a in range(ndim):
+                g[a] = 0.0
+        if use_walls:
+            e += wall_point(wall_cv, wall_bound, wall_k, wall_sign, wall_power, s, g)
+        energy_out[p] = e
+        for a in range(ndim):
+            grad_out[p, a] = g[a]
+
+
+@njit(cache=True, nogil=True)
+def inside_grid(ndim, lower3, upper3, periodic3, s):
+    """True when s (d,) lies within the limits of every non-periodic axis."""
+    for a in range(ndim):
+        if not periodic3[a] and not (lower3[a] <= s[a] <= upper3[a]):
+            return False
+    return True
+
+
+@njit(cache=True, nogil=True)
+def deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, center, sigma, height, cutoff):
+    """Add one Gaussian hill of peak ``height`` at ``center`` (d,) with widths ``sigma`` (d,).
+
+    Updates the values and every spline-derivative array of ``coef4`` in place.
+    """
+    nmax = max(coef4.shape[1], max(coef4.shape[2], coef4.shape[3]))
+    fac = np.zeros((3, 2, nmax))          # [axis, 0 = Gaussian / 1 = its spline slope, node]
+    idx = np.zeros((3, 2, nmax), dtype=np.int64)
+    cnt = np.zeros((3, 2), dtype=np.int64)
+    for a in range(3):
+        if a >= ndim:  # padded axis of size 1: a plain factor 1
+            fac[a, 0, 0] = 1.0
+            cnt[a, 0] = 1
+            continue
+        n = coef4.shape[1 + a]
+        g = np.zeros(n)
+        gi = np.empty(n, dtype=np.int64)
+        c = _hill_factor(n, periodic3[a], lower3[a], spacing3[a], center[a], sigma[a], cutoff, g, gi)
+        sl = np.empty(n)
+        spline_slopes(g, periodic3[a], sl)
+        si = np.empty(n, dtype=np.int64)
+        cs = _slope_support(sl, si)
+        for q in range(n):
+            fac[a, 0, q] = g[q]
+            fac[a, 1, q] = sl[q]
+        for q in range(c):
+            idx[a, 0, q] = gi[q]
+        for q in range(cs):
+            idx[a, 1, q] = si[q]
+        cnt[a, 0] = c
+        cnt[a, 1] = cs
+    for m in range(1 << ndim):
+        o0 = m & 1
+        o1 = (m >> 1) & 1 if ndim > 1 else 0
+        o2 = (m >> 2) & 1 if ndim > 2 else 0
+        for q0 in range(cnt[0, o0]):
+            i0 = idx[0, o0, q0]
+            f0 = height * fac[0, o0, i0]
+            for q1 in range(cnt[1, o1]):
+                i1 = idx[1, o1, q1]
+                f01 = f0 * fac[1, o1, i1]
+                for q2 in range(cnt[2, o2]):
+                    i2 = idx[2, o2, q2]
+                    coef4[m, i0, i1, i2] += f01 * fac[2, o2, i2]
+
+
+@njit(cache=True, nogil=True)
+def deposit_point(coef4, ndim, lower3, upper3, spacing3, bins3, periodic3, center, sigma,
+                  height, cutoff, wt_inverse_energy):
+    """One deposit step: the height rule plus the hill. Returns the height used, or -1.0 if outside.
+
+    wt_inverse_energy : 1 / (kB (gamma - 1) T) in mol/kJ for well-tempered, 0.0 for standard.
+    """
+    if not inside_grid(ndim, lower3, upper3, periodic3, center):
+        return -1.0
+    h = height
+    if wt_inverse_energy > 0.0:
+        g = np.empty(ndim)
+        v = eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, center, g)
+        h = height * np.exp(-v * wt_inverse_energy)
+    deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, center, sigma, h, cutoff)
+    return h
+
+
+@njit(cache=True, nogil=True)
+def add_hills(coef4, ndim, lower3, upper3, spacing3, bins3, periodic3, centers, sigma, heights,
+              cutoff, deposited_out):
+    """Add given hills (k, d) with heights (k,) in order; deposited_out (k,) bool marks those inside."""
+    for h in range(centers.shape[0]):
+        inside = inside_grid(ndim, lower3, upper3, periodic3, centers[h])
+        deposited_out[h] = inside
+        if inside:
+            deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, centers[h], sigma,
+                         heights[h], cutoff)
