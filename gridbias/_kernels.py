@@ -31,6 +31,8 @@ def spline_slopes(y, periodic, out):
     one period of n >= 2 distinct nodes (the node after the last is the first).
     """
     n = y.shape[0]
+    rhs = np.empty(n)
+    diag = np.full(n, 4.0)
     if periodic:
         if n == 2:
             out[0] = 0.0
@@ -39,27 +41,24 @@ def spline_slopes(y, periodic, out):
         # Cyclic system m[i-1] + 4 m[i] + m[i+1] = 3 (y[i+1] - y[i-1]) by Sherman-Morrison:
         # A = B + u v^T with u = (gam, 0, ..., 0, 1), v = (1, 0, ..., 0, 1/gam).
         gam = -4.0
-        rhs = np.empty(n)
+        rhs[0] = 3.0 * (y[1] - y[n - 1])
+        for i in range(1, n - 1):
+            rhs[i] = 3.0 * (y[i + 1] - y[i - 1])
+        rhs[n - 1] = 3.0 * (y[0] - y[n - 2])
         u = np.zeros(n)
-        for i in range(n):
-            rhs[i] = 3.0 * (y[(i + 1) % n] - y[(i - 1) % n])
         u[0] = gam
         u[n - 1] = 1.0
-        diag = np.full(n, 4.0)
         diag[0] = 4.0 - gam
         diag[n - 1] = 4.0 - 1.0 / gam
-        yy = np.empty(n)
         zz = np.empty(n)
-        _thomas_unit_offdiag(diag, rhs, yy)
+        _thomas_unit_offdiag(diag, rhs, out)
         _thomas_unit_offdiag(diag, u, zz)
-        fact = (yy[0] + yy[n - 1] / gam) / (1.0 + zz[0] + zz[n - 1] / gam)
+        fact = (out[0] + out[n - 1] / gam) / (1.0 + zz[0] + zz[n - 1] / gam)
         for i in range(n):
-            out[i] = yy[i] - fact * zz[i]
+            out[i] -= fact * zz[i]
     else:
-        diag = np.full(n, 4.0)
         diag[0] = 2.0
         diag[n - 1] = 2.0
-        rhs = np.empty(n)
         rhs[0] = 3.0 * (y[1] - y[0])
         for i in range(1, n - 1):
             rhs[i] = 3.0 * (y[i + 1] - y[i - 1])
@@ -75,68 +74,89 @@ def _thomas_unit_offdiag(diag, rhs, out):
     cp[0] = 1.0 / diag[0]
     out[0] = rhs[0] / diag[0]
     for i in range(1, n):
-        den = diag[i] - cp[i - 1]
-        cp[i] = 1.0 / den
-        out[i] = (rhs[i] - out[i - 1]) / den
+        inv = 1.0 / (diag[i] - cp[i - 1])
+        cp[i] = inv
+        out[i] = (rhs[i] - out[i - 1]) * inv
     for i in range(n - 2, -1, -1):
         out[i] -= cp[i] * out[i + 1]
 
 
 @njit(cache=True, nogil=True)
-def _hill_factor(n, periodic, lower, spacing, center, sigma, cutoff, g_out, idx_out):
-    """Gaussian factor of one axis on its n nodes. Returns the footprint size; fills idx_out[:count].
+def _hill_window(n, periodic, lower, spacing, center, sigma, cutoff):
+    """Footprint of one axis as (first node, node count, centre in index units).
 
-    g_out : (n,) zeroed by the caller; entries within ``cutoff * sigma`` of the centre (minimum image
-    on periodic axes) get exp(-d^2 / (2 sigma^2)).
+    The first node is unwrapped (may be negative or >= n on a periodic axis); nodes within
+    ``cutoff * sigma`` of the centre (minimum image on periodic axes) belong to the footprint.
     """
     u = (center - lower) / spacing
     r = cutoff * sigma / spacing
-    count = 0
     if periodic:
         u = u - n * np.floor(u / n)
-        if 2.0 * r + 1.0 >= n:
-            for j in range(n):
-                d = j - u
-                d -= n * np.floor(d / n + 0.5)
-                if abs(d) <= r:
-                    z = d * spacing / sigma
-                    g_out[j] = np.exp(-0.5 * z * z)
-                    idx_out[count] = j
-                    count += 1
-        else:
-            for i in range(int(np.ceil(u - r)), int(np.floor(u + r)) + 1):
-                j = i % n
-                z = (i - u) * spacing / sigma
-                g_out[j] = np.exp(-0.5 * z * z)
-                idx_out[count] = j
-                count += 1
-    else:
-        i0 = max(0, int(np.ceil(u - r)))
-        i1 = min(n - 1, int(np.floor(u + r)))
-        for i in range(i0, i1 + 1):
-            z = (i - u) * spacing / sigma
-            g_out[i] = np.exp(-0.5 * z * z)
-            idx_out[count] = i
-            count += 1
-    return count
+        first = int(np.ceil(u - r))
+        last = int(np.floor(u + r))
+        if last - first + 1 >= n:  # the footprint covers the whole period: every node once
+            first = int(np.ceil(u - 0.5 * n))
+            return first, n, u
+        return first, last - first + 1, u
+    first = max(0, int(np.ceil(u - r)))
+    last = min(n - 1, int(np.floor(u + r)))
+    return first, max(0, last - first + 1), u
 
 
 @njit(cache=True, nogil=True)
-def _slope_support(s, idx_out):
-    """Indices where |s| exceeds _SLOPE_TAIL of its maximum. Returns the count."""
+def _axis_factors(n, periodic, lower, spacing, center, sigma, cutoff, g_full, s_full, fac, start, length, a):
+    """Fill the compact Gaussian factor (order 0) and spline-slope factor (order 1) of axis ``a``.
+
+    fac[a, order, q] holds the factor of node (start[a, order] + q) mod n for q < length[a, order].
+    g_full, s_full : (n,) scratch arrays.
+    """
+    first, count, u = _hill_window(n, periodic, lower, spacing, center, sigma, cutoff)
+    r = cutoff * sigma / spacing
+    g_full[:] = 0.0
+    for q in range(count):
+        i = first + q
+        d = i - u
+        if periodic:
+            d -= n * np.floor(d / n + 0.5)  # minimum image
+        if abs(d) <= r:
+            z = d * spacing / sigma
+            val = np.exp(-0.5 * z * z)
+        else:
+            val = 0.0
+        fac[a, 0, q] = val
+        g_full[i % n if periodic else i] = val
+    start[a, 0] = first % n if periodic else first
+    length[a, 0] = count
+    spline_slopes(g_full, periodic, s_full)
+    # Keep the slope factor where it exceeds _SLOPE_TAIL of its maximum: a window around the centre.
     smax = 0.0
-    for i in range(s.shape[0]):
-        if abs(s[i]) > smax:
-            smax = abs(s[i])
-    count = 0
-    if smax == 0.0:
-        return 0
+    for i in range(n):
+        if abs(s_full[i]) > smax:
+            smax = abs(s_full[i])
     tol = _SLOPE_TAIL * smax
-    for i in range(s.shape[0]):
-        if abs(s[i]) > tol:
-            idx_out[count] = i
-            count += 1
-    return count
+    if periodic:
+        reach = 0
+        centre = int(np.floor(u))
+        for i in range(n):
+            if abs(s_full[i]) > tol:
+                d = i - centre
+                d -= n * int(np.floor(d / n + 0.5))
+                reach = max(reach, abs(d) + 1)
+        lo = centre - reach
+        cnt = min(2 * reach + 1, n)
+    else:
+        lo = n
+        hi = -1
+        for i in range(n):
+            if abs(s_full[i]) > tol:
+                lo = min(lo, i)
+                hi = max(hi, i)
+        cnt = max(0, hi - lo + 1)
+        lo = min(lo, n - 1)
+    for q in range(cnt):
+        fac[a, 1, q] = s_full[(lo + q) % n]
+    start[a, 1] = lo % n
+    length[a, 1] = cnt
 
 
 @njit(cache=True, nogil=True)
@@ -268,6 +288,24 @@ def evaluate_points(coef4, ndim, lower3, spacing3, bins3, periodic3,
 
 
 @njit(cache=True, nogil=True)
+def evaluate_one(coef4, ndim, lower3, spacing3, bins3, periodic3,
+                 wall_cv, wall_bound, wall_k, wall_sign, wall_power, use_grid, use_walls, s, grad_out):
+    """Bias at one point s (d,) into grad_out (d,); returns the energy, or NaN if s is not finite."""
+    for a in range(ndim):
+        if not np.isfinite(s[a]):
+            return np.nan
+    e = 0.0
+    if use_grid:
+        e = eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, grad_out)
+    else:
+        for a in range(ndim):
+            grad_out[a] = 0.0
+    if use_walls:
+        e += wall_point(wall_cv, wall_bound, wall_k, wall_sign, wall_power, s, grad_out)
+    return e
+
+
+@njit(cache=True, nogil=True)
 def inside_grid(ndim, lower3, upper3, periodic3, s):
     """True when s (d,) lies within the limits of every non-periodic axis."""
     for a in range(ndim):
@@ -280,47 +318,57 @@ def inside_grid(ndim, lower3, upper3, periodic3, s):
 def deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, center, sigma, height, cutoff):
     """Add one Gaussian hill of peak ``height`` at ``center`` (d,) with widths ``sigma`` (d,).
 
-    Updates the values and every spline-derivative array of ``coef4`` in place.
+    Updates the values and every spline-derivative array of ``coef4`` in place: coef[m] gets the
+    outer product of the per-axis factors (Gaussian on axes not in m, its spline slope on axes in m).
     """
-    nmax = max(coef4.shape[1], max(coef4.shape[2], coef4.shape[3]))
-    fac = np.zeros((3, 2, nmax))          # [axis, 0 = Gaussian / 1 = its spline slope, node]
-    idx = np.zeros((3, 2, nmax), dtype=np.int64)
-    cnt = np.zeros((3, 2), dtype=np.int64)
+    n0, n1, n2 = coef4.shape[1], coef4.shape[2], coef4.shape[3]
+    nmax = max(n0, max(n1, n2))
+    fac = np.zeros((3, 2, nmax))
+    start = np.zeros((3, 2), dtype=np.int64)
+    length = np.ones((3, 2), dtype=np.int64)
+    g_full = np.empty(nmax)
+    s_full = np.empty(nmax)
     for a in range(3):
-        if a >= ndim:  # padded axis of size 1: a plain factor 1
+        if a < ndim:
+            n = coef4.shape[1 + a]
+            _axis_factors(n, periodic3[a], lower3[a], spacing3[a], center[a], sigma[a], cutoff,
+                          g_full[:n], s_full[:n], fac, start, length, a)
+        else:  # padded axis of size 1: factor 1 at node 0
             fac[a, 0, 0] = 1.0
-            cnt[a, 0] = 1
-            continue
-        n = coef4.shape[1 + a]
-        g = np.zeros(n)
-        gi = np.empty(n, dtype=np.int64)
-        c = _hill_factor(n, periodic3[a], lower3[a], spacing3[a], center[a], sigma[a], cutoff, g, gi)
-        sl = np.empty(n)
-        spline_slopes(g, periodic3[a], sl)
-        si = np.empty(n, dtype=np.int64)
-        cs = _slope_support(sl, si)
-        for q in range(n):
-            fac[a, 0, q] = g[q]
-            fac[a, 1, q] = sl[q]
-        for q in range(c):
-            idx[a, 0, q] = gi[q]
-        for q in range(cs):
-            idx[a, 1, q] = si[q]
-        cnt[a, 0] = c
-        cnt[a, 1] = cs
+    flat = coef4.reshape(coef4.shape[0], n0 * n1 * n2)
+    last = ndim - 1
+    n_last = coef4.shape[1 + last]
+    # Outer axes: the real axes before the last one (padded ones have a single node).
+    ax_a = 0 if last >= 1 else 2
+    ax_b = 1 if last >= 2 else 2
+    stride = np.array([n1 * n2, n2, 1])
     for m in range(1 << ndim):
-        o0 = m & 1
-        o1 = (m >> 1) & 1 if ndim > 1 else 0
-        o2 = (m >> 2) & 1 if ndim > 2 else 0
-        for q0 in range(cnt[0, o0]):
-            i0 = idx[0, o0, q0]
-            f0 = height * fac[0, o0, i0]
-            for q1 in range(cnt[1, o1]):
-                i1 = idx[1, o1, q1]
-                f01 = f0 * fac[1, o1, i1]
-                for q2 in range(cnt[2, o2]):
-                    i2 = idx[2, o2, q2]
-                    coef4[m, i0, i1, i2] += f01 * fac[2, o2, i2]
+        oa = (m >> ax_a) & 1 if ax_a < ndim else 0
+        ob = (m >> ax_b) & 1 if ax_b < ndim else 0
+        ol = (m >> last) & 1
+        la = length[ax_a, oa] if ax_a < ndim else 1
+        lb = length[ax_b, ob] if ax_b < ndim else 1
+        na = coef4.shape[1 + ax_a]
+        nb = coef4.shape[1 + ax_b]
+        j0 = start[last, ol]
+        lq = length[last, ol]
+        first_piece = min(lq, n_last - j0)
+        row = flat[m]
+        for qa in range(la):
+            ia = (start[ax_a, oa] + qa) % na
+            fa = height * fac[ax_a, oa, qa]
+            for qb in range(lb):
+                ib = (start[ax_b, ob] + qb) % nb
+                f = fa * fac[ax_b, ob, qb]
+                if f == 0.0:
+                    continue
+                base = ia * stride[ax_a] + ib * stride[ax_b] if last >= 1 else 0
+                fl = fac[last, ol]
+                off = base + j0
+                for q in range(first_piece):
+                    row[off + q] += f * fl[q]
+                for q in range(first_piece, lq):
+                    row[base + q - first_piece] += f * fl[q]
 
 
 @njit(cache=True, nogil=True)
@@ -329,7 +377,11 @@ def deposit_point(coef4, ndim, lower3, upper3, spacing3, bins3, periodic3, cente
     """One deposit step: the height rule plus the hill. Returns the height used, or -1.0 if outside.
 
     wt_inverse_energy : 1 / (kB (gamma - 1) T) in mol/kJ for well-tempered, 0.0 for standard.
+    Returns -2.0 (and deposits nothing) if the centre is not finite.
     """
+    for a in range(ndim):
+        if not np.isfinite(center[a]):
+            return -2.0
     if not inside_grid(ndim, lower3, upper3, periodic3, center):
         return -1.0
     h = height

@@ -135,6 +135,7 @@ class GridBias:
         self._wall_k = np.array([w.k for w in walls], dtype=float)
         self._wall_sign = np.array([w.sign for w in walls], dtype=float)
         self._wall_power = np.array([w.power for w in walls], dtype=float)
+        self._has_walls = bool(walls)
         self._wt_inverse = 0.0 if bias_factor is None else 1.0 / (KB * (bias_factor - 1.0) * self._temperature)
         self._history = HillHistory(d)
         self._n_outside = 0
@@ -252,10 +253,16 @@ class GridBias:
         ``time`` (ps) is recorded in the history (NaN if not given). Outside a non-periodic axis nothing
         is deposited, 0.0 is returned and ``n_outside`` grows. NaN/inf CV values raise ParameterError.
         """
-        s = self._point(s)
+        s = np.asarray(s, dtype=float)
+        if s.ndim == 0 and self.ndim == 1:
+            s = s.reshape(1)
+        if s.shape != (self.ndim,):
+            raise GridError(f"s must have shape ({self.ndim},) (one value per CV), got shape {np.shape(s)}")
         h = _kernels.deposit_point(self._coef, self.ndim, self._lower3, self._upper3, self._spacing3,
                                    self._bins3, self._periodic3, s, self._sigma, self._height,
                                    self._cutoff, self._wt_inverse)
+        if h == -2.0:
+            raise ParameterError(f"s must be finite, got {s.tolist()}: refusing NaN/inf CV values")
         if h < 0.0:
             self._note_outside(s)
             return 0.0
@@ -294,13 +301,24 @@ class GridBias:
 
     # -- evaluation ---------------------------------------------------------------------------
     def _evaluate(self, points, use_grid, use_walls):
-        pts, single = self._points(points)
+        arr = np.asarray(points, dtype=float)
+        d = self.ndim
+        if arr.shape == (d,) or (d == 1 and arr.ndim == 0):  # one point: the lean path
+            grad_d = np.empty(d)
+            energy = _kernels.evaluate_one(self._coef, d, self._lower3, self._spacing3, self._bins3,
+                                           self._periodic3, self._wall_cv, self._wall_bound, self._wall_k,
+                                           self._wall_sign, self._wall_power, use_grid,
+                                           use_walls and self._has_walls, arr.reshape(d), grad_d)
+            if energy != energy:
+                raise ParameterError(f"points must be finite, got {arr.tolist()}: refusing NaN/inf CV values")
+            return energy, grad_d
+        pts, single = self._points(arr)
         n = pts.shape[0]
         energy_n = np.empty(n)
         grad_nd = np.empty((n, self.ndim))
         _kernels.evaluate_points(self._coef, self.ndim, self._lower3, self._spacing3, self._bins3,
                                  self._periodic3, self._wall_cv, self._wall_bound, self._wall_k,
-                                 self._wall_sign, self._wall_power, use_grid, use_walls and bool(self._walls),
+                                 self._wall_sign, self._wall_power, use_grid, use_walls and self._has_walls,
                                  pts, energy_n, grad_nd)
         if single:
             return float(energy_n[0]), grad_nd[0]
