@@ -169,12 +169,12 @@ def _write_atomically(path: str, chunks, what: str) -> None:
         ) from exc
 
 
-def _create_temp(path: str):
-    """Create and open ``<path>.tmp-<16 hex>`` exclusively (permissions from the umask)."""
+def _create_temp(path: str, flags: int = os.O_WRONLY):
+    """Create and open ``<path>.tmp-<16 hex>`` exclusively (permissions from the umask); return (fd, name)."""
     while True:
         tmp = f"{path}.tmp-{secrets.token_hex(8)}"
         try:
-            return os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666), tmp
+            return os.open(tmp, flags | os.O_CREAT | os.O_EXCL, 0o666), tmp
         except FileExistsError:
             continue
 
