@@ -224,8 +224,6 @@ def eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, grad_out):
             node[a] = k
         for m in range(ncorner):
             c = coef4[m, node[0], node[1], node[2]]
-            if c == 0.0:
-                continue
             w = 1.0
             w0 = 1.0
             w1 = 1.0
