@@ -1,0 +1,65 @@
+"""Analysis of a metadynamics run: free-energy surfaces, reweighting, errors, basins and convergence.
+
+Every function works on plain arrays and on the core objects (``GridBias``, ``Grid``) and returns small
+frozen result objects. Free-energy results depend on the CV choice (hidden slow modes cause hysteresis),
+on convergence, on sampling time and on the force field: validate them before relying on them.
+
+Modules, one job each:
+
+- ``surfaces``: the surface from the bias now or at past times (replaying the hills).
+- ``reweighting``: frame weights to the unbiased ensemble (time-independent offset, final bias), Kish ESS.
+- ``histograms``: free energy along any per-frame quantity, with block errors.
+- ``blocking``: block analysis of a correlated series.
+- ``basins``: basins from boxes or from the surface's minima; transitions between their cores.
+- ``differences``: basin free-energy differences against simulated time.
+- ``convergence``: the convergence verdict.
+"""
+
+from .basins import (
+    Basins,
+    Transitions,
+    basin_free_energies,
+    basins_from_boxes,
+    count_transitions,
+    find_basins,
+)
+from .blocking import BlockingCurve, blocking_curve
+from .convergence import (
+    ConvergenceVerdict,
+    Criterion,
+    assess_convergence,
+    drift_criterion,
+    height_criterion,
+    transition_criterion,
+)
+from .differences import BasinDifferences, basin_differences_from_bias, basin_differences_from_frames
+from .histograms import Profile, free_energy_along
+from .reweighting import (
+    FrameWeights,
+    final_bias_weights,
+    kish_effective_sample_size,
+    offset_weights,
+    time_independent_offset,
+)
+from .surfaces import (
+    Surface,
+    SurfaceSeries,
+    evenly_spaced_times,
+    hills_deposited_by,
+    iter_surfaces,
+    surface_at,
+    surface_series,
+)
+
+__all__ = [
+    "Surface", "SurfaceSeries", "surface_at", "surface_series", "iter_surfaces", "hills_deposited_by",
+    "evenly_spaced_times",
+    "FrameWeights", "offset_weights", "final_bias_weights", "time_independent_offset",
+    "kish_effective_sample_size",
+    "Profile", "free_energy_along",
+    "BlockingCurve", "blocking_curve",
+    "Basins", "Transitions", "basins_from_boxes", "find_basins", "basin_free_energies", "count_transitions",
+    "BasinDifferences", "basin_differences_from_bias", "basin_differences_from_frames",
+    "Criterion", "ConvergenceVerdict", "drift_criterion", "transition_criterion", "height_criterion",
+    "assess_convergence",
+]
