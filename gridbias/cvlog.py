@@ -204,7 +204,7 @@ def _read_header(fd: int, path: str) -> _Header:
         if len(columns) != m or not isinstance(metadata, dict) or rest[text_len:].strip(b"\x00"):
             raise ValueError("inconsistent header fields")
     except (ValueError, KeyError, TypeError, ParameterError) as exc:
-        raise CVLogError(f"CV log {path!r} has a damaged header ({exc})") from exc
+        raise CVLogError(f"CV log {path!r} has a damaged header ({type(exc).__name__}: {exc})") from exc
     return _Header(tuple(columns), tuple(units), metadata, data_offset)
 
 
