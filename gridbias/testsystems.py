@@ -285,9 +285,9 @@ class MuellerBrown(_Potential):
 
 @dataclass(frozen=True)
 class CoupledDoubleWell(_Potential):
-    """A double well in x whose transverse well in y narrows away from x = 0; meant to be biased along x.
+    """A double well in x whose transverse well in y stiffens along x; meant to be biased along x alone.
 
-    U(x, y) = h (x^2 - 1)^2 + tilt x + (k_y / 2) (1 + c x^2) y^2
+    U(x, y) = h (x^2 - 1)^2 + tilt x + (k_y / 2) exp(c x) y^2
 
     Parameters
     ----------
@@ -296,19 +296,21 @@ class CoupledDoubleWell(_Potential):
     tilt : float, kJ/mol/nm
     stiffness : float, kJ/mol/nm^2
         k_y, the transverse stiffness at x = 0.
-    coupling : float, 1/nm^2
-        c >= 0: how fast the transverse well stiffens with x.
+    coupling : float, 1/nm
+        c: the transverse stiffness grows as exp(c x).
 
     Notes
     -----
-    Integrating y out gives an entropic term, so F(x) differs from the potential along the valley:
-    F(x) = h (x^2 - 1)^2 + tilt x + (kT/2) ln[k_y (1 + c x^2) / (2 pi kT)] (the y integral in nm).
+    Integrating y out adds an entropic term that tilts the free energy by c kT / 2 per nm, so F(x)
+    differs from the potential along the valley floor and depends on temperature:
+    F(x) = h (x^2 - 1)^2 + tilt x + (kT/2) [c x + ln(k_y / (2 pi kT))] (the y integral in nm).
+    With c > 0 the left well (x = -1) is wider in y and gains c kT over the right one.
     """
 
     barrier: float = 25.0
     tilt: float = 0.0
     stiffness: float = 200.0
-    coupling: float = 3.0
+    coupling: float = 1.0
     ndim = 2
     cv_axes = (0,)
 
@@ -316,15 +318,13 @@ class CoupledDoubleWell(_Potential):
         object.__setattr__(self, "barrier", _positive("barrier", self.barrier))
         object.__setattr__(self, "tilt", _finite("tilt", self.tilt))
         object.__setattr__(self, "stiffness", _positive("stiffness", self.stiffness))
-        coupling = _finite("coupling", self.coupling)
-        if coupling < 0.0:
-            raise ParameterError(f"coupling must be >= 0, got {coupling!r}")
-        object.__setattr__(self, "coupling", coupling)
+        object.__setattr__(self, "coupling", _finite("coupling", self.coupling))
 
     @property
     def domain(self):
-        """((x_lo, x_hi), (y_lo, y_hi)) nm: holds all Boltzmann weight for kT up to ~10 kJ/mol."""
-        half_y = 12.0 * math.sqrt(10.0 / self.stiffness)
+        """((x_lo, x_hi), (y_lo, y_hi)) nm: holds the Boltzmann weight for kT up to ~10 kJ/mol."""
+        softest = self.stiffness * math.exp(-2.5 * abs(self.coupling))
+        half_y = 12.0 * math.sqrt(10.0 / softest)
         return ((-2.5, 2.5), (-half_y, half_y))
 
     def energy_gradient(self, points):
@@ -332,12 +332,11 @@ class CoupledDoubleWell(_Potential):
         xy_n2 = _points(points, 2)
         x_n, y_n = xy_n2[:, 0], xy_n2[:, 1]
         u_n = x_n**2 - 1.0
-        widen_n = 1.0 + self.coupling * x_n**2
-        energy_n = self.barrier * u_n**2 + self.tilt * x_n + 0.5 * self.stiffness * widen_n * y_n**2
+        transverse_n = 0.5 * self.stiffness * np.exp(self.coupling * x_n) * y_n**2
+        energy_n = self.barrier * u_n**2 + self.tilt * x_n + transverse_n
         grad_n2 = np.empty_like(xy_n2)
-        transverse_n = self.stiffness * self.coupling * x_n * y_n**2
-        grad_n2[:, 0] = 4.0 * self.barrier * u_n * x_n + self.tilt + transverse_n
-        grad_n2[:, 1] = self.stiffness * widen_n * y_n
+        grad_n2[:, 0] = 4.0 * self.barrier * u_n * x_n + self.tilt + self.coupling * transverse_n
+        grad_n2[:, 1] = self.stiffness * np.exp(self.coupling * x_n) * y_n
         return energy_n, grad_n2
 
     def free_energy(self, points, *, temperature):
@@ -345,7 +344,7 @@ class CoupledDoubleWell(_Potential):
         kt = KB * _positive("temperature", temperature)
         x_n = _points(points, 1)[:, 0]
         along = self.barrier * (x_n**2 - 1.0) ** 2 + self.tilt * x_n
-        return along + 0.5 * kt * np.log(self.stiffness * (1.0 + self.coupling * x_n**2) / (2.0 * np.pi * kt))
+        return along + 0.5 * kt * (self.coupling * x_n + np.log(self.stiffness / (2.0 * np.pi * kt)))
 
     def _kernel_spec(self):
         return _COUPLED_DOUBLE_WELL, np.array([self.barrier, self.tilt, self.stiffness, self.coupling])
@@ -405,10 +404,11 @@ def _potential_point(kind, params, x, grad_out):
     # _COUPLED_DOUBLE_WELL
     h, tilt, ky, c = params[0], params[1], params[2], params[3]
     u = x[0] * x[0] - 1.0
-    widen = 1.0 + c * x[0] * x[0]
-    grad_out[0] = 4.0 * h * u * x[0] + tilt + ky * c * x[0] * x[1] * x[1]
-    grad_out[1] = ky * widen * x[1]
-    return h * u * u + tilt * x[0] + 0.5 * ky * widen * x[1] * x[1]
+    k_transverse = ky * math.exp(c * x[0])
+    transverse = 0.5 * k_transverse * x[1] * x[1]
+    grad_out[0] = 4.0 * h * u * x[0] + tilt + c * transverse
+    grad_out[1] = k_transverse * x[1]
+    return h * u * u + tilt * x[0] + transverse
 
 
 @njit(cache=True, nogil=True)
@@ -507,7 +507,6 @@ class _Integrator:
     """Validated dynamics settings and state (positions, velocities, step count, recorded frames)."""
 
     def __init__(self, potential, x0, v0, n_steps, dt, friction, mass, temperature, rng, record_every):
-        _check_potential(potential)
         if not isinstance(rng, np.random.Generator):
             raise ParameterError(
                 f"rng must be a numpy.random.Generator (np.random.default_rng(seed)), got {rng!r}")
@@ -546,9 +545,23 @@ class _Integrator:
         return Trajectory(times, self.positions, self.velocities, self.potential_energies, self.bias_energies)
 
 
+def _check_bias(potential, bias, cv):
+    """Validated bias and the (k,) int64 coordinate indices its CVs read."""
+    if not isinstance(bias, GridBias):
+        raise ParameterError(f"bias must be a gridbias.GridBias, got {type(bias).__name__}")
+    cv = potential.cv_axes if cv is None else cv
+    cv_index = np.array(cv, dtype=np.int64).reshape(-1) if np.ndim(cv) <= 1 else None
+    if (cv_index is None or cv_index.shape != (bias.ndim,) or len(set(cv_index.tolist())) != bias.ndim
+            or not all(0 <= c < potential.ndim for c in cv_index.tolist())):
+        raise ParameterError(
+            f"cv must list {bias.ndim} distinct coordinate indices (0..{potential.ndim - 1}), one per CV "
+            f"of the bias, got {cv!r}")
+    return cv_index
+
+
 def run_langevin(potential, x0, *, n_steps, dt, friction, temperature, rng, mass=1.0, v0=None,
-                 record_every=1):
-    """Unbiased Langevin dynamics with the BAOAB splitting (Leimkuhler & Matthews 2013).
+                 record_every=1, bias=None, cv=None):
+    """Langevin dynamics with the BAOAB splitting (Leimkuhler & Matthews 2013), under a fixed bias or none.
 
     Parameters
     ----------
@@ -569,11 +582,15 @@ def run_langevin(potential, x0, *, n_steps, dt, friction, temperature, rng, mass
         Start velocity; drawn from the Maxwell-Boltzmann distribution when omitted.
     record_every : int
         Keep every this many steps as a frame.
+    bias : gridbias.GridBias, optional
+        A bias (grid part + walls) added to the potential and left unchanged: no hills are deposited.
+    cv : sequence of int, optional
+        Which coordinates are the bias's CVs, in its CV order; default ``potential.cv_axes``.
 
     Returns
     -------
     Trajectory
-        ``n_steps // record_every`` frames; ``bias_energies`` are all 0.
+        ``n_steps // record_every`` frames; ``bias_energies`` are 0 without a bias.
 
     Examples
     --------
@@ -585,8 +602,14 @@ def run_langevin(potential, x0, *, n_steps, dt, friction, temperature, rng, mass
     (100, 1)
     """
     n_steps = _count("n_steps", n_steps)
+    _check_potential(potential)
+    if bias is None:
+        grid_args, wall_args, cv_index = _NO_BIAS, _NO_WALLS, np.zeros(0, dtype=np.int64)
+    else:
+        cv_index = _check_bias(potential, bias, cv)
+        grid_args, wall_args = bias.kernel_args(), bias.wall_args()
     state = _Integrator(potential, x0, v0, n_steps, dt, friction, mass, temperature, rng, record_every)
-    state.advance(n_steps, _NO_BIAS, _NO_WALLS, np.zeros(0, dtype=np.int64), False)
+    state.advance(n_steps, grid_args, wall_args, cv_index, bias is not None)
     return state.trajectory()
 
 
@@ -624,17 +647,9 @@ def run_metadynamics(potential, bias, x0, *, n_deposits, stride, dt, friction, r
         ``bias_energies`` hold the bias (grid + walls) acting at each recorded step.
     """
     _check_potential(potential)
-    if not isinstance(bias, GridBias):
-        raise ParameterError(f"bias must be a gridbias.GridBias, got {type(bias).__name__}")
+    cv_index = _check_bias(potential, bias, cv)
     n_deposits = _count("n_deposits", n_deposits)
     stride = _count("stride", stride)
-    cv = potential.cv_axes if cv is None else cv
-    cv_index = np.array(cv, dtype=np.int64).reshape(-1) if np.ndim(cv) <= 1 else None
-    if (cv_index is None or cv_index.shape != (bias.ndim,) or len(set(cv_index.tolist())) != bias.ndim
-            or not all(0 <= c < potential.ndim for c in cv_index.tolist())):
-        raise ParameterError(
-            f"cv must list {bias.ndim} distinct coordinate indices (0..{potential.ndim - 1}), one per CV "
-            f"of the bias, got {cv!r}")
     record_every = stride if record_every is None else record_every
     state = _Integrator(potential, x0, v0, n_deposits * stride, dt, friction, mass, bias.temperature, rng,
                         record_every)

@@ -2,6 +2,7 @@
 
 import math
 
+import numba
 import numpy as np
 import pytest
 
@@ -21,12 +22,14 @@ integrate = pytest.importorskip("scipy.integrate")
 
 T = 300.0
 KT = gb.KB * T
+# Sampling tests run millions of steps: seconds compiled, far too long with NUMBA_DISABLE_JIT=1.
+needs_jit = pytest.mark.skipif(numba.config.DISABLE_JIT, reason="needs compiled dynamics (slow without JIT)")
 
 POTENTIALS = [
     HarmonicWell(stiffness=150.0, center=0.2),
     DoubleWell(barrier=20.0, tilt=3.0),
     MuellerBrown(scale=0.3),
-    CoupledDoubleWell(barrier=20.0, tilt=-2.0, stiffness=150.0, coupling=2.5),
+    CoupledDoubleWell(barrier=20.0, tilt=-2.0, stiffness=150.0, coupling=1.5),
 ]
 
 
@@ -141,6 +144,7 @@ def test_marginal_refuses_a_domain_that_cuts_the_integral():
 
 
 # --- BAOAB sampling ---------------------------------------------------------------------------------
+@needs_jit
 def test_baoab_samples_the_harmonic_configurational_distribution_exactly():
     # Equipartition: <x^2> = kT/k. BAOAB samples the configurational distribution of a harmonic oscillator
     # without time-step error (Leimkuhler & Matthews, Appl. Math. Res. Express 2013, 34; from memory), so a
@@ -155,6 +159,7 @@ def test_baoab_samples_the_harmonic_configurational_distribution_exactly():
     assert abs(x2.mean() - expected) < 4 * error
 
 
+@needs_jit
 def test_baoab_kinetic_temperature():
     # <v^2> = kT/m per coordinate (equipartition). Full-step BAOAB velocities carry an O(dt^2) error
     # (Leimkuhler & Matthews 2013, from memory); at omega dt = 0.1 it is about 0.3 %, below the 1.5 % allowed.
@@ -166,6 +171,7 @@ def test_baoab_kinetic_temperature():
     assert v2.mean() == pytest.approx(KT, rel=0.015)
 
 
+@needs_jit
 def test_tilted_double_well_populations_match_quadrature():
     # Probability of the left well, P(x < 0) = ∫_{x<0} e^{-U/kT} / ∫ e^{-U/kT} (REFERENCES.md §6, tilted
     # double well), from an unbiased run with a 3 kT barrier.
@@ -254,6 +260,20 @@ def test_metadynamics_on_two_cvs_uses_the_selected_coordinates_in_order():
     np.testing.assert_array_equal(bias.history.centers, traj.positions[3::4, ::-1])
 
 
+def test_langevin_under_a_fixed_bias_feels_it_and_leaves_it_unchanged():
+    pot = POTENTIALS[3]
+    bias = gb.GridBias(gb.Grid([-2.0], [2.0], [160]), sigma=[0.2], height=3.0, temperature=T,
+                       walls=[gb.Wall(cv=0, bound=-0.9, k=800.0, side="below")])
+    bias.add_hills([[-1.0], [-0.8], [1.1]], [3.0, 2.0, 1.0])
+    before = bias.values.copy()
+    traj = run_langevin(pot, [-1.0, 0.0], n_steps=3000, dt=0.004, friction=5.0, temperature=T, bias=bias,
+                        rng=np.random.default_rng(14), record_every=30)
+    np.testing.assert_allclose(traj.bias_energies, bias.evaluate(traj.positions[:, :1])[0], rtol=1e-12,
+                               atol=1e-12)
+    np.testing.assert_array_equal(bias.values, before)
+    assert bias.n_hills == 3
+
+
 # --- bad input --------------------------------------------------------------------------------------
 @pytest.mark.parametrize(
     "make, match",
@@ -263,7 +283,7 @@ def test_metadynamics_on_two_cvs_uses_the_selected_coordinates_in_order():
         (lambda: DoubleWell(tilt=float("nan")), "tilt must be a finite number"),
         (lambda: MuellerBrown(scale=float("inf")), "scale must be a finite number > 0"),
         (lambda: MuellerBrown.for_barrier(0.0, T), "barrier_kt must be a finite number > 0"),
-        (lambda: CoupledDoubleWell(coupling=-1.0), "coupling must be >= 0, got -1.0"),
+        (lambda: CoupledDoubleWell(coupling=np.inf), "coupling must be a finite number, got inf"),
         (lambda: DoubleWell().energy_gradient([0.1, 0.2]), r"points must have shape \(n, 1\)"),
         (lambda: MuellerBrown().free_energy([[0.1]], temperature=T), r"points must have shape \(n, 2\)"),
         (lambda: DoubleWell().free_energy([[0.1]], temperature=-1.0), "temperature must be"),
