@@ -181,9 +181,9 @@ def ratio_standard_errors(bin_n, weight_n, n_bins, *, min_blocks=DEFAULT_MIN_BLO
     The estimate of bin ``j`` is the ratio ``p_j = sum_i w_i [b_i = j] / sum_i w_i`` over all frames
     (frames with ``b_i = -1`` count only in the denominator). Consecutive frames are grouped into blocks
     of ``2**l`` frames; the block sums of the numerator (``N_bj``) and of the denominator (``D_b``) are
-    linearised, ``z_bj = (N_bj - p_j D_b) / mean_b(D_b)`` (first-order propagation through the ratio,
-    common practice, no source), and blocked as in :func:`blocking_curve`. Pairs (block, bin) are kept
-    sparse, so memory stays O(n) for any number of bins.
+    linearised, ``z_bj = (N_bj - p_j D_b) / (block size * mean_i w_i)`` (first-order propagation
+    through the ratio, common practice, no source), and blocked as in :func:`blocking_curve`. Pairs
+    (block, bin) are kept sparse, so memory stays O(n) for any number of bins.
 
     Parameters
     ----------
@@ -213,10 +213,10 @@ def ratio_standard_errors(bin_n, weight_n, n_bins, *, min_blocks=DEFAULT_MIN_BLO
     pair_sum = w[inside]
     p_m = np.bincount(pair_bin, weights=pair_sum, minlength=n_bins) / total
     block_sum = w
+    d_mean = w.mean()  # mean denominator per block, at block size 1; doubles with each level
     se_levels, bar_levels, n_blocks = [], [], []
     while block_sum.shape[0] >= 2:
         nb = block_sum.shape[0]
-        d_mean = block_sum.mean()
         s_n = np.bincount(pair_bin, weights=pair_sum, minlength=n_bins)
         s_nn = np.bincount(pair_bin, weights=pair_sum**2, minlength=n_bins)
         s_nd = np.bincount(pair_bin, weights=pair_sum * block_sum[pair_block], minlength=n_bins)
@@ -231,6 +231,7 @@ def ratio_standard_errors(bin_n, weight_n, n_bins, *, min_blocks=DEFAULT_MIN_BLO
         n_blocks.append(nb)
         half = nb // 2
         block_sum = block_sum[0 : 2 * half : 2] + block_sum[1 : 2 * half : 2]
+        d_mean *= 2.0
         keep = pair_block < 2 * half
         key = (pair_block[keep] // 2) * n_bins + pair_bin[keep]
         unique_key, inverse = np.unique(key, return_inverse=True)

@@ -26,7 +26,8 @@ class Profile:
         ``-kT ln(p / bin volume)``, shifted to minimum 0; NaN in bins no weighted frame reached.
     error : same shape, kJ/mol
         One standard error from block analysis, ``kT * se(p) / p``. It is the error of each bin against
-        the common normalisation (the shift to minimum 0 is not propagated).
+        the common normalisation (the shift to minimum 0 is not propagated), and it is statistical only:
+        systematic errors of the weights (e.g. frames from the filling transient) are not included.
     probability : same shape
         Weighted fraction of all used frames in each bin (frames outside the edges count in the total).
     counts : same shape, int
