@@ -62,15 +62,22 @@ def _points(points, ndim, name="points"):
     return arr
 
 
+def _number(name, value, allowed):
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        raise ParameterError(f"{name} must be {allowed}, got {value!r}") from None
+
+
 def _positive(name, value):
-    value = float(value)
+    value = _number(name, value, "a finite number > 0")
     if not (math.isfinite(value) and value > 0.0):
         raise ParameterError(f"{name} must be a finite number > 0, got {value!r}")
     return value
 
 
 def _finite(name, value):
-    value = float(value)
+    value = _number(name, value, "a finite number")
     if not math.isfinite(value):
         raise ParameterError(f"{name} must be a finite number, got {value!r}")
     return value
@@ -490,7 +497,10 @@ def _check_potential(potential):
 
 
 def _state_vector(name, value, ndim):
-    arr = np.array(value, dtype=np.float64).reshape(-1) if np.ndim(value) <= 1 else None
+    try:
+        arr = np.array(value, dtype=np.float64).reshape(-1) if np.ndim(value) <= 1 else None
+    except (TypeError, ValueError):
+        arr = None
     if arr is None or arr.shape != (ndim,) or not np.all(np.isfinite(arr)):
         raise ParameterError(f"{name} must hold {ndim} finite numbers (one per coordinate), got {value!r}")
     return arr

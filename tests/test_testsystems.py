@@ -303,6 +303,8 @@ GOOD_RUN = dict(n_steps=10, dt=0.01, friction=1.0, temperature=T, rng=np.random.
     "change, match",
     [
         (dict(dt=0.0), "dt must be a finite number > 0, got 0.0"),
+        (dict(dt="fast"), "dt must be a finite number > 0, got 'fast'"),
+        (dict(x0=["left"]), "x0 must hold 1 finite numbers"),
         (dict(friction=-1.0), r"friction must be >= 0 \(1/ps\), got -1.0"),
         (dict(mass=float("nan")), "mass must be a finite number > 0"),
         (dict(temperature=0.0), "temperature must be a finite number > 0"),
