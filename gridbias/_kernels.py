@@ -160,87 +160,91 @@ def _axis_factors(n, periodic, lower, spacing, center, sigma, cutoff, g_full, s_
 
 
 @njit(cache=True, nogil=True)
-def _locate(ndim, lower3, spacing3, bins3, periodic3, s, cell, frac):
-    """Cell index and fraction per axis. Returns False if s is outside a non-periodic axis."""
-    for a in range(ndim):
-        u = (s[a] - lower3[a]) / spacing3[a]
-        nb = bins3[a]
-        if periodic3[a]:
-            u = u - nb * np.floor(u / nb)
-            c = int(np.floor(u))
-            if c >= nb:  # u rounded up to exactly nb
-                c = nb - 1
-            cell[a] = c
-            frac[a] = u - c
-        else:
-            if not (u >= 0.0 and u <= nb):
-                return False
-            c = int(np.floor(u))
-            if c >= nb:
-                c = nb - 1
-            cell[a] = c
-            frac[a] = u - c
-    return True
+def _axis_cell(x, lower, spacing, nb, periodic):
+    """(inside, cell, fraction) of coordinate x on one axis with nb intervals."""
+    u = (x - lower) / spacing
+    if periodic:
+        u = u - nb * np.floor(u / nb)
+    elif not (u >= 0.0 and u <= nb):
+        return False, 0, 0.0
+    c = int(np.floor(u))
+    if c >= nb:  # the upper edge, or u rounded up to nb
+        c = nb - 1
+    return True, c, u - c
+
+
+@njit(cache=True, nogil=True)
+def _hermite(t):
+    """Cubic Hermite basis on [0, 1] and its t-derivative, indexed [2 * order + corner]:
+    order 0 weighs node values, order 1 node slopes; corner 0 is the cell's lower node."""
+    t2 = t * t
+    t3 = t2 * t
+    return ((2.0 * t3 - 3.0 * t2 + 1.0, -2.0 * t3 + 3.0 * t2, t3 - 2.0 * t2 + t, t3 - t2),
+            (6.0 * t2 - 6.0 * t, -6.0 * t2 + 6.0 * t, 3.0 * t2 - 4.0 * t + 1.0, 3.0 * t2 - 2.0 * t))
 
 
 @njit(cache=True, nogil=True)
 def eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, grad_out):
     """Grid bias (kJ/mol) at one CV point s (d,); writes dV/ds into grad_out (d,).
 
-    Zero (and zero gradient) outside a non-periodic axis, as OpenMM's tables are.
+    Zero (and zero gradient) outside a non-periodic axis, as OpenMM's tables are. Allocates nothing.
     """
     for a in range(ndim):
         grad_out[a] = 0.0
-    cell = np.zeros(3, dtype=np.int64)
-    frac = np.zeros(3)
-    if not _locate(ndim, lower3, spacing3, bins3, periodic3, s, cell, frac):
+    ok, c0, t0 = _axis_cell(s[0], lower3[0], spacing3[0], bins3[0], periodic3[0])
+    if not ok:
         return 0.0
-    # Hermite basis per axis: h[a, order, corner] and its t-derivative dh[a, order, corner].
-    h = np.empty((3, 2, 2))
-    dh = np.empty((3, 2, 2))
-    for a in range(ndim):
-        t = frac[a]
-        t2 = t * t
-        t3 = t2 * t
-        h[a, 0, 0] = 2.0 * t3 - 3.0 * t2 + 1.0
-        h[a, 0, 1] = -2.0 * t3 + 3.0 * t2
-        h[a, 1, 0] = t3 - 2.0 * t2 + t
-        h[a, 1, 1] = t3 - t2
-        dh[a, 0, 0] = 6.0 * t2 - 6.0 * t
-        dh[a, 0, 1] = -6.0 * t2 + 6.0 * t
-        dh[a, 1, 0] = 3.0 * t2 - 4.0 * t + 1.0
-        dh[a, 1, 1] = 3.0 * t2 - 2.0 * t
-    ncorner = 1 << ndim
-    node = np.zeros(3, dtype=np.int64)
+    c1, t1, c2, t2 = 0, 0.0, 0, 0.0
+    if ndim > 1:
+        ok, c1, t1 = _axis_cell(s[1], lower3[1], spacing3[1], bins3[1], periodic3[1])
+        if not ok:
+            return 0.0
+    if ndim > 2:
+        ok, c2, t2 = _axis_cell(s[2], lower3[2], spacing3[2], bins3[2], periodic3[2])
+        if not ok:
+            return 0.0
+    h0, d0 = _hermite(t0)
+    h1, d1 = _hermite(t1)
+    h2, d2 = _hermite(t2)
     energy = 0.0
     g0 = 0.0
     g1 = 0.0
     g2 = 0.0
+    ncorner = 1 << ndim
     for corner in range(ncorner):
-        for a in range(ndim):
-            k = cell[a] + ((corner >> a) & 1)
-            if periodic3[a] and k == bins3[a]:
-                k = 0
-            node[a] = k
+        k0 = corner & 1
+        k1 = (corner >> 1) & 1
+        k2 = (corner >> 2) & 1
+        i0 = c0 + k0
+        if periodic3[0] and i0 == bins3[0]:
+            i0 = 0
+        i1 = c1 + k1
+        if ndim > 1 and periodic3[1] and i1 == bins3[1]:
+            i1 = 0
+        i2 = c2 + k2
+        if ndim > 2 and periodic3[2] and i2 == bins3[2]:
+            i2 = 0
         for m in range(ncorner):
-            c = coef4[m, node[0], node[1], node[2]]
-            w = 1.0
-            w0 = 1.0
-            w1 = 1.0
-            w2 = 1.0
-            for a in range(ndim):
-                order = (m >> a) & 1
-                cb = (corner >> a) & 1
-                hv = h[a, order, cb]
-                dv = dh[a, order, cb]
-                w *= hv
-                w0 *= dv if a == 0 else hv
-                w1 *= dv if a == 1 else hv
-                w2 *= dv if a == 2 else hv
-            energy += c * w
-            g0 += c * w0
-            g1 += c * w1
-            g2 += c * w2
+            c = coef4[m, i0, i1, i2]
+            j0 = 2 * (m & 1) + k0
+            v0, w0 = h0[j0], d0[j0]
+            if ndim == 1:
+                energy += c * v0
+                g0 += c * w0
+                continue
+            j1 = 2 * ((m >> 1) & 1) + k1
+            v1, w1 = h1[j1], d1[j1]
+            if ndim == 2:
+                energy += c * v0 * v1
+                g0 += c * w0 * v1
+                g1 += c * v0 * w1
+                continue
+            j2 = 2 * ((m >> 2) & 1) + k2
+            v2, w2 = h2[j2], d2[j2]
+            energy += c * v0 * v1 * v2
+            g0 += c * w0 * v1 * v2
+            g1 += c * v0 * w1 * v2
+            g2 += c * v0 * v1 * w2
     grad_out[0] = g0 / spacing3[0]
     if ndim > 1:
         grad_out[1] = g1 / spacing3[1]
