@@ -19,6 +19,8 @@ import pytest
 
 mm = pytest.importorskip("openmm")
 
+from openmm import app  # noqa: E402
+
 import gridbias as gb  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
 
@@ -104,7 +106,7 @@ def dipeptide_link(pending=4, bins=64, platform="Reference", **kw):
     link = gbo.attach(system, cvs, bias, pending_hills=pending)
     integrator = mm.LangevinMiddleIntegrator(300, 1, 0.002)
     integrator.setRandomNumberSeed(11)
-    sim = mm.app.Simulation(top, system, integrator, mm.Platform.getPlatformByName(platform))
+    sim = app.Simulation(top, system, integrator, mm.Platform.getPlatformByName(platform))
     sim.context.setPositions(pos)
     return link, sim
 
@@ -151,7 +153,7 @@ def test_refuses_other_system(tmp_path):
     bias = gbo.make_bias(cvs, lower=[-np.pi] * 2, upper=[np.pi] * 2, bins=[64, 64], sigma=[0.35, 0.35], height=1.2,
                          temperature=300.0, bias_factor=10.0)
     link3 = gbo.attach(system, cvs, bias)
-    sim3 = mm.app.Simulation(top, system, mm.VerletIntegrator(0.001), mm.Platform.getPlatformByName("Reference"))
+    sim3 = app.Simulation(top, system, mm.VerletIntegrator(0.001), mm.Platform.getPlatformByName("Reference"))
     with pytest.raises(gb.CheckpointError, match="CV 1 differs"):
         link3.restore(sim3, path)
     # other particle count
