@@ -253,8 +253,8 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=
            route="compound", name="gridbias"):
     """Add the forces that apply ``bias`` as a function of ``cvs`` to ``system``.
 
-    Call it before the Simulation (or Context) is created: a Context only sees the forces its System had
-    when it was made.
+    Call it once the System is complete (its periodicity is read here) and before the Simulation (or
+    Context) is created: a Context only sees the forces its System had when it was made.
 
     Parameters
     ----------
