@@ -1,0 +1,468 @@
+"""Figures of free-energy surfaces, basin differences, CV time series, hill heights and blocking curves.
+
+matplotlib is imported only when a function here is called (``pip install 'gridbias[plot]'``). Figures are
+built as ``matplotlib.figure.Figure`` objects without pyplot, so they work headless and never touch a global
+figure state. Each function takes an optional ``ax`` to draw into and returns the Figure; ``save_figure``
+writes PNG or SVG. Surfaces use the 'cividis' colour map: perceptually uniform, readable in greyscale and by
+colour-blind readers.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+
+from .errors import ParameterError
+
+__all__ = ["new_figure", "save_figure", "plot_free_energy", "plot_basin_differences", "plot_cv_timeseries",
+           "plot_hill_heights", "plot_blocking_curve"]
+
+COLOUR_MAP = "cividis"
+_INK = "#1d2b36"  # lines and text: a dark slate
+_ACCENT = "#b5532b"  # thresholds and plateau marks: burnt orange (dark enough to read in greyscale)
+_SERIES = ("#1d2b36", "#b5532b", "#4f7f6f", "#7a5c9c", "#8a8a3c")
+_KT_LABEL = r"$k_\mathrm{B}T$"
+
+
+def _figure_class():
+    try:
+        from matplotlib.figure import Figure
+    except ImportError as exc:  # pragma: no cover - depends on the environment
+        raise ImportError("gridbias.plots needs matplotlib: pip install 'gridbias[plot]'") from exc
+    return Figure
+
+
+def new_figure(nrows: int = 1, ncols: int = 1, *, width: float = 6.4, height: float = 4.4, **kwargs):
+    """A Figure with a grid of axes, built without pyplot (safe on headless machines).
+
+    Parameters
+    ----------
+    nrows, ncols : int
+    width, height : float, inches, keyword-only
+        Size of the whole figure.
+    **kwargs
+        Passed to ``Figure.subplots`` (e.g. ``sharex=True``).
+
+    Returns
+    -------
+    (Figure, Axes or array of Axes)
+    """
+    figure = _figure_class()(figsize=(width, height), layout="constrained")
+    return figure, figure.subplots(nrows, ncols, squeeze=True, **kwargs)
+
+
+def _figure_and_axes(ax, width=6.4, height=4.4):
+    if ax is None:
+        return new_figure(width=width, height=height)
+    return ax.figure, ax
+
+
+def save_figure(figure, path, *, dpi: int = 150) -> str:
+    """Write a figure to ``path`` as PNG or SVG (chosen by the extension) and return the path.
+
+    Raises
+    ------
+    ParameterError
+        If the extension is not .png or .svg, or the folder does not exist.
+    """
+    path = os.fspath(path)
+    extension = os.path.splitext(path)[1].lower()
+    if extension not in (".png", ".svg"):
+        raise ParameterError(f"path must end in .png or .svg, got {path!r}")
+    folder = os.path.dirname(os.path.abspath(path))
+    if not os.path.isdir(folder):
+        raise ParameterError(f"cannot write {path!r}: folder {folder!r} does not exist")
+    figure.savefig(path, dpi=dpi)
+    return path
+
+
+def _angle_scale(angle_unit):
+    if angle_unit == "rad":
+        return 1.0, "rad"
+    if angle_unit == "deg":
+        return 180.0 / math.pi, "deg"
+    raise ParameterError(f"angle_unit must be 'rad' or 'deg', got {angle_unit!r}")
+
+
+def _energy_scale(energy_unit, kT):
+    if energy_unit == "kJ/mol":
+        return 1.0, "kJ/mol"
+    if energy_unit == "kBT":
+        return 1.0 / kT, _KT_LABEL
+    raise ParameterError(f"energy_unit must be 'kJ/mol' or 'kBT', got {energy_unit!r}")
+
+
+def _axis_labels(names, ndim, angular, angle_unit):
+    """Axis label and coordinate scale per axis: periodic (angular) axes get the chosen angle unit."""
+    names = tuple(names) if names else ()
+    if names and len(names) != ndim:
+        raise ParameterError(f"names must give one label per axis ({ndim}), got {names!r}")
+    scale, unit = _angle_scale(angle_unit)
+    labels, scales = [], []
+    for i in range(ndim):
+        base = names[i] if names and names[i] else f"CV {i + 1}"
+        if angular[i]:
+            labels.append(f"{base} ({unit})")
+            scales.append(scale)
+        else:
+            labels.append(base)
+            scales.append(1.0)
+    return labels, scales
+
+
+def _closed_periodic(grid, axes, values):
+    """Repeat the first node after the last on periodic axes, so a plot spans the whole period."""
+    coords = []
+    for axis, periodic in enumerate(grid.periodic):
+        coordinate = np.asarray(axes[axis], dtype=float)
+        if periodic:
+            coordinate = np.append(coordinate, grid.upper[axis])
+            values = np.concatenate([values, np.take(values, [0], axis=axis)], axis=axis)
+        coords.append(coordinate)
+    return coords, values
+
+
+def _surface_data(result):
+    """(coordinates per axis, F, error or None, kT, angular per axis, default names) of a result."""
+    from .analysis import Profile, Surface
+
+    if isinstance(result, Surface):
+        coords, fes = _closed_periodic(result.grid, result.grid.axes, np.asarray(result.free_energy))
+        return coords, fes, None, result.kT, [bool(p) for p in result.grid.periodic], ()
+    if isinstance(result, Profile):
+        return (list(result.centers), np.asarray(result.free_energy), np.asarray(result.error), result.kT,
+                [False] * result.ndim, result.names)
+    raise ParameterError(f"result must be a Surface (surface_at) or a Profile (free_energy_along), "
+                         f"got {type(result).__name__}")
+
+
+def _secondary_energy_axis(axis, kT, energy_unit, which):
+    """Add an axis in the other energy unit: kBT beside kJ/mol, or kJ/mol beside kBT."""
+    if energy_unit == "kJ/mol":
+        forward, backward, label = (lambda e: e / kT), (lambda e: e * kT), f"free energy ({_KT_LABEL})"
+    else:
+        forward, backward, label = (lambda e: e * kT), (lambda e: e / kT), "free energy (kJ/mol)"
+    if which == "y":
+        extra = axis.secondary_yaxis("right", functions=(forward, backward))
+    else:
+        extra = axis.secondary_yaxis("left", functions=(forward, backward))
+    extra.set_ylabel(label)
+    return extra
+
+
+def _box_rectangles(grid, low, high, scales):
+    """Axis-aligned rectangles (x0, y0, w, h) drawing a 2-D box, split where it wraps a periodic axis."""
+    pieces = []
+    for axis in range(2):
+        lo, hi = float(low[axis]), float(high[axis])
+        if grid.periodic[axis]:
+            period = grid.span[axis]
+            if hi - lo >= period:
+                spans = [(grid.lower[axis], grid.upper[axis])]
+            else:
+                start = grid.lower[axis] + (lo - grid.lower[axis]) % period
+                width = (hi - lo) % period
+                end = start + width
+                spans = [(start, min(end, grid.upper[axis]))]
+                if end > grid.upper[axis]:
+                    spans.append((grid.lower[axis], end - period))
+        else:
+            spans = [(lo, hi)]
+        pieces.append([(a * scales[axis], b * scales[axis]) for a, b in spans])
+    return [(x0, y0, x1 - x0, y1 - y0) for x0, x1 in pieces[0] for y0, y1 in pieces[1]]
+
+
+def _mark_basins(ax, basins, scales, ndim, curve=None, shown=None):
+    from matplotlib.patches import Rectangle
+
+    for k, name in enumerate(basins.names):
+        point = basins.markers[k] * np.asarray(scales)
+        if ndim == 1:
+            y = float(np.interp(basins.markers[k][0], curve[0], curve[1])) if curve is not None else 0.0
+            ax.annotate(name, (point[0], y), xytext=(0, 10), textcoords="offset points", ha="center",
+                        color=_ACCENT, fontweight="bold")
+            continue
+        ax.plot(point[0], point[1], marker="o", markersize=5, markerfacecolor="white", markeredgecolor=_INK)
+        label_box = dict(boxstyle="round,pad=0.2", facecolor="white", edgecolor="none", alpha=0.8)
+        ax.annotate(name, (point[0], point[1]), xytext=(6, 6), textcoords="offset points", color=_INK,
+                    fontweight="bold", bbox=label_box)
+        if basins.boxes is not None:
+            for x0, y0, w, h in _box_rectangles(basins.grid, basins.boxes[0][k], basins.boxes[1][k], scales):
+                ax.add_patch(Rectangle((x0, y0), w, h, fill=False, edgecolor="white", linewidth=1.2,
+                                       linestyle=(0, (4, 2))))
+    if ndim == 2 and basins.boxes is None and basins.n_basins > 1:
+        # catchment borders, drawn only where the surface is shown (not across the flat top above it)
+        coords, labels = _closed_periodic(basins.grid, basins.grid.axes, basins.labels.astype(float))
+        if shown is not None:
+            labels = np.where(shown, labels, np.nan)
+        x, y = (c * s for c, s in zip(coords, scales))
+        ax.contour(x, y, np.ma.masked_invalid(labels.T), levels=np.arange(basins.n_basins - 1) + 0.5,
+                   colors="white", linewidths=0.9, linestyles="dotted")
+
+
+def plot_free_energy(result, *, ax=None, basins=None, names=(), angle_unit: str = "rad",
+                     energy_unit: str = "kJ/mol", max_free_energy: float | None = None, level_step=None):
+    """Plot a free-energy profile (1-D curve with error band) or surface (2-D filled contours).
+
+    Parameters
+    ----------
+    result : Surface or Profile
+        From ``analysis.surface_at`` / ``surface_series(...)[i]`` or ``analysis.free_energy_along``.
+    ax : matplotlib Axes, keyword-only, optional
+        Draw here; default a new Figure.
+    basins : Basins, keyword-only, optional
+        Marked by name at their minimum (or box centre); boxes outlined, catchment borders dotted (2-D).
+    names : sequence of str, keyword-only
+        Axis labels (default the Profile's names, else "CV 1", "CV 2"); give units for non-angular axes.
+    angle_unit : {"rad", "deg"}, keyword-only
+        Unit of periodic axes (a Surface's periodic axes are angles).
+    energy_unit : {"kJ/mol", "kBT"}, keyword-only
+        Main energy unit; the other one is shown on a second axis.
+    max_free_energy : float, keyword-only, optional
+        Highest level shown, in ``energy_unit``; default the top of the data, at most 12 kBT (2-D).
+    level_step : float, keyword-only, optional
+        Spacing of the 2-D contour levels in ``energy_unit``; default 1 kBT.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.ticker import MaxNLocator
+
+    from .analysis import Surface
+
+    coords, fes, error, kT, angular, default_names = _surface_data(result)
+    ndim = fes.ndim
+    if ndim not in (1, 2):
+        raise ParameterError(f"only 1-D and 2-D results can be plotted, got {ndim}-D")
+    labels, scales = _axis_labels(names or default_names, ndim, angular, angle_unit)
+    factor, unit = _energy_scale(energy_unit, kT)
+    figure, ax = _figure_and_axes(ax, 6.4, 4.4 if ndim == 1 else 5.0)
+    if ndim == 1:
+        x = np.asarray(coords[0]) * scales[0]
+        y = fes * factor
+        if error is not None:
+            ax.fill_between(x, y - error * factor, y + error * factor, color=_SERIES[2], alpha=0.3,
+                            linewidth=0, label="± 1 standard error")
+        ax.plot(x, y, color=_INK, linewidth=1.8, label="free energy")
+        ax.set_xlabel(labels[0])
+        ax.set_ylabel(f"free energy ({unit})")
+        if max_free_energy is not None:
+            ax.set_ylim(top=max_free_energy)
+        _secondary_energy_axis(ax, kT, energy_unit, "y")
+        if error is not None:
+            ax.legend(frameon=False, loc="upper center")
+        if basins is not None:
+            _mark_basins(ax, basins, scales, 1, (np.asarray(coords[0]), y))
+        return figure
+    x, y = (np.asarray(c) * s for c, s in zip(coords, scales))
+    data = fes * factor
+    step = level_step if level_step is not None else kT * factor
+    if max_free_energy is None:
+        top = max(min(np.nanmax(data), 12.0 * kT * factor), step)
+    else:
+        top = max_free_energy
+    if not (np.isfinite(top) and top > 0 and step > 0):
+        raise ParameterError(f"max_free_energy ({top}) and level_step ({step}) must be finite and > 0")
+    levels = np.arange(0.0, top + 0.5 * step, step)
+    if levels.size < 2:
+        levels = np.array([0.0, top])
+    masked = np.ma.masked_invalid(data.T)
+    filled = ax.contourf(x, y, masked, levels=levels, cmap=COLOUR_MAP, extend="max")
+    ax.contour(x, y, masked, levels=levels, colors=_INK, linewidths=0.35, alpha=0.6)
+    colour_bar = figure.colorbar(filled, ax=ax)
+    colour_bar.set_ticks(MaxNLocator(7).tick_values(0.0, levels[-1]))
+    colour_bar.set_label(f"free energy ({unit})")
+    _secondary_energy_axis(colour_bar.ax, kT, energy_unit, "colorbar")
+    ax.set_xlabel(labels[0])
+    ax.set_ylabel(labels[1])
+    if basins is not None:
+        same_grid = isinstance(result, Surface) and result.grid == basins.grid
+        _mark_basins(ax, basins, scales, 2, shown=(data <= top) if same_grid else None)
+    return figure
+
+
+def plot_basin_differences(differences, *, ax=None, energy_unit: str = "kJ/mol",
+                           window_fraction: float | None = None):
+    """Plot basin free-energy differences against simulated time, with error bars where known.
+
+    Parameters
+    ----------
+    differences : BasinDifferences or sequence of them
+        Several (e.g. from the bias and from reweighted frames) are overlaid.
+    ax : matplotlib Axes, keyword-only, optional
+    energy_unit : {"kJ/mol", "kBT"}, keyword-only
+    window_fraction : float, keyword-only, optional
+        Shade the last part of the run that the drift criterion examines.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from .analysis import BasinDifferences
+
+    series = [differences] if isinstance(differences, BasinDifferences) else list(differences)
+    if not series or not all(isinstance(s, BasinDifferences) for s in series):
+        raise ParameterError("differences must be BasinDifferences or a non-empty sequence of them")
+    figure, ax = _figure_and_axes(ax)
+    markers = ("o", "s", "^", "D", "v")
+    colour = 0
+    for n, result in enumerate(series):
+        factor, unit = _energy_scale(energy_unit, result.kT)
+        ref = result.names[result.reference]
+        for b, name in enumerate(result.names):
+            if b == result.reference:
+                continue
+            y = result.differences[:, b] * factor
+            err = None if result.errors is None else result.errors[:, b] * factor
+            ax.errorbar(result.times, y, yerr=err, marker=markers[n % len(markers)], markersize=4,
+                        linewidth=1.2, capsize=2, color=_SERIES[colour % len(_SERIES)],
+                        label=f"{name} − {ref} ({result.source})")
+            colour += 1
+    ax.axhline(0.0, color=_INK, linewidth=0.6, alpha=0.4)
+    if window_fraction is not None:
+        times = series[0].times
+        start = times[-1] - window_fraction * (times[-1] - times[0])
+        ax.axvspan(start, times[-1], color=_ACCENT, alpha=0.08, linewidth=0,
+                   label=f"last {100 * window_fraction:.0f}% of the run")
+    ax.set_xlabel("simulated time (ps)")
+    ax.set_ylabel(f"free-energy difference ({_energy_scale(energy_unit, series[0].kT)[1]})")
+    ax.legend(frameon=False)
+    return figure
+
+
+def plot_cv_timeseries(times, cvs, *, ax=None, names=(), angular=None, angle_unit: str = "rad", basins=None):
+    """Plot each CV against simulated time, as dots (no lines across periodic jumps).
+
+    Parameters
+    ----------
+    times : (n,) float, ps
+    cvs : (n,) or (n, d) float, CV units
+    ax : matplotlib Axes, keyword-only, optional
+        All CVs on this one axes; default a new Figure with one panel per CV.
+    names : sequence of str, keyword-only
+    angular : sequence of bool, keyword-only, optional
+        Which CVs are angles (shown in ``angle_unit``); default none, or the periodic axes of ``basins.grid``.
+    angle_unit : {"rad", "deg"}, keyword-only
+    basins : Basins, keyword-only, optional
+        1-D only: the basins' minima or box centres are drawn as horizontal guides.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    t = np.asarray(times, dtype=float)
+    values = np.asarray(cvs, dtype=float)
+    values = values[:, None] if values.ndim == 1 else values
+    if values.ndim != 2 or values.shape[0] != t.shape[0]:
+        raise ParameterError(
+            f"cvs must have shape (n,) or (n, d) with n = {t.shape[0]} frames, got {values.shape}")
+    d = values.shape[1]
+    if angular is None:
+        angular = [bool(p) for p in basins.grid.periodic] if basins is not None else [False] * d
+    if len(angular) != d:
+        raise ParameterError(f"angular must give one True/False per CV ({d}), got {angular!r}")
+    labels, scales = _axis_labels(names, d, angular, angle_unit)
+    if ax is None:
+        figure, axes = new_figure(d, 1, width=7.0, height=2.2 * d + 0.6, sharex=True)
+        axes = np.atleast_1d(axes)
+    else:
+        figure, axes = ax.figure, [ax] * d
+    for i in range(d):
+        axes[i].plot(t, values[:, i] * scales[i], linestyle="none", marker=".", markersize=1.5,
+                     color=_SERIES[i % len(_SERIES)], label=labels[i])
+        axes[i].set_ylabel(labels[i])
+        if basins is not None and basins.grid.ndim == d:
+            for k, name in enumerate(basins.names):
+                level = basins.markers[k][i] * scales[i]
+                axes[i].axhline(level, color=_ACCENT, linewidth=0.7, alpha=0.6)
+                axes[i].annotate(name, (1.0, level), xycoords=("axes fraction", "data"), xytext=(3, 0),
+                                 textcoords="offset points", va="center", color=_ACCENT)
+    axes[-1].set_xlabel("simulated time (ps)")
+    return figure
+
+
+def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None = None,
+                      max_fraction: float | None = None):
+    """Plot hill heights against simulated time on a log scale.
+
+    Parameters
+    ----------
+    times : (n,) float, ps
+    heights : (n,) float, kJ/mol
+        E.g. ``bias.history.times`` and ``bias.history.heights``.
+    ax : matplotlib Axes, keyword-only, optional
+    initial_height : float, kJ/mol, keyword-only, optional
+        Drawn as a reference line.
+    max_fraction : float, keyword-only, optional
+        With ``initial_height``: the height-decay threshold of the convergence verdict, drawn as a line.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    t = np.asarray(times, dtype=float)
+    h = np.asarray(heights, dtype=float)
+    if t.shape != h.shape or t.ndim != 1:
+        raise ParameterError(
+            f"times and heights must be 1-D arrays of one length, got {t.shape} and {h.shape}")
+    figure, ax = _figure_and_axes(ax, 6.4, 3.6)
+    positive = h > 0
+    ax.plot(t[positive], h[positive], linestyle="none", marker=".", markersize=2.5, color=_INK, label="hills")
+    if initial_height is not None:
+        ax.axhline(initial_height, color=_INK, linewidth=0.8, alpha=0.5, linestyle="--",
+                   label="initial height")
+        if max_fraction is not None:
+            ax.axhline(max_fraction * initial_height, color=_ACCENT, linewidth=1.0,
+                       label=f"{100 * max_fraction:g}% of the initial height")
+    ax.set_yscale("log")
+    ax.set_xlabel("simulated time (ps)")
+    ax.set_ylabel("hill height (kJ/mol)")
+    ax.legend(frameon=False)
+    return figure
+
+
+def plot_blocking_curve(curve, *, ax=None, unit: str = ""):
+    """Plot a blocking curve: the standard error against block size, with its error bars and plateau.
+
+    Parameters
+    ----------
+    curve : BlockingCurve
+    ax : matplotlib Axes, keyword-only, optional
+    unit : str, keyword-only
+        Unit of the series, for the axis label.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from .analysis import BlockingCurve
+
+    if not isinstance(curve, BlockingCurve):
+        raise ParameterError(
+            f"curve must be a BlockingCurve (analysis.blocking_curve), got {type(curve).__name__}")
+    figure, ax = _figure_and_axes(ax, 6.4, 3.8)
+    few = curve.n_blocks < curve.min_blocks
+    ax.errorbar(curve.block_sizes[~few], curve.standard_errors[~few], yerr=curve.standard_error_bars[~few],
+                marker="o", markersize=4, capsize=2, color=_INK, linestyle="-", linewidth=1.0,
+                label="standard error of the mean")
+    if few.any():
+        ax.errorbar(curve.block_sizes[few], curve.standard_errors[few], yerr=curve.standard_error_bars[few],
+                    marker="o", markersize=4, capsize=2, color=_INK, alpha=0.35, linestyle="none",
+                    label=f"fewer than {curve.min_blocks} blocks")
+    if curve.plateau_found:
+        level = curve.plateau_level
+        ax.axhline(curve.standard_error, color=_ACCENT, linewidth=1.0, linestyle="--",
+                   label=f"plateau: {curve.standard_error:.3g}")
+        ax.plot(curve.block_sizes[level], curve.standard_errors[level], marker="o", markersize=9,
+                markerfacecolor="none", markeredgecolor=_ACCENT, markeredgewidth=1.5)
+    else:
+        ax.text(0.02, 0.95, "no plateau: the series is too short for a reliable error",
+                transform=ax.transAxes, va="top", color=_ACCENT)
+    ax.set_xscale("log", base=2)
+    ax.set_xlabel("block size (frames)")
+    ax.set_ylabel(f"standard error{f' ({unit})' if unit else ''}")
+    ax.legend(frameon=False, loc="lower right")
+    return figure
