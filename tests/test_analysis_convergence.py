@@ -137,3 +137,14 @@ def test_standard_runs_skip_the_height_criterion_and_say_so(rng):
     assert any("does not apply to standard metadynamics" in note for note in verdict.notes)
     with pytest.raises(ParameterError, match="give both frame_times and frame_cvs"):
         assess_convergence(bias, basins, frame_times=[0.0])
+
+
+def test_hills_without_time_are_assessed_in_deposition_order(rng):
+    grid = gb.Grid([-2.0], [2.0], [100])
+    bias = gb.GridBias(grid, sigma=[0.1], height=1.0, temperature=T, bias_factor=5.0)
+    for s in rng.uniform(-1.5, 1.5, 80):
+        bias.deposit([s])  # no time recorded
+    basins = basins_from_boxes(grid, {"L": ([-1.5], [-0.5]), "R": ([0.5], [1.5])})
+    verdict = assess_convergence(bias, basins, n_points=20)
+    drift = verdict.criteria[0]
+    assert np.isfinite(drift.measured) and "no simulated time recorded" in drift.detail

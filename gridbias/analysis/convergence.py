@@ -104,7 +104,8 @@ def drift_criterion(differences: BasinDifferences, *, window_fraction: float = D
     Parameters
     ----------
     differences : BasinDifferences
-        From :func:`basin_differences_from_bias` or :func:`basin_differences_from_frames`.
+        From :func:`basin_differences_from_bias` or :func:`basin_differences_from_frames`. Where the
+        times are unknown (NaN), the window is the last ``window_fraction`` of the estimates.
     window_fraction : float in (0, 1], keyword-only, default 0.25
         The last part of the time span examined.
     tolerance_kT : float, keyword-only, default 0.5
@@ -128,7 +129,11 @@ def drift_criterion(differences: BasinDifferences, *, window_fraction: float = D
     if len(differences.names) < 2:
         problem = "fewer than two basins: there is no difference to follow"
     else:
-        window = times >= times[-1] - fraction * (times[-1] - times[0])
+        if np.isfinite(times).all():
+            window = times >= times[-1] - fraction * (times[-1] - times[0])
+        else:  # hills without time: the last part of the estimates, in deposition order
+            span = f"the last {100 * fraction:.0f}% of the estimates (no simulated time recorded)"
+            window = np.arange(times.size) >= times.size - max(1, round(fraction * times.size))
         values = np.delete(differences.differences[window], differences.reference, axis=1)
         if window.sum() < 2:
             problem = f"fewer than two estimates in {span}; ask for more time points"

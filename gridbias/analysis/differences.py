@@ -82,18 +82,21 @@ def _check_reference(basins, reference) -> int:
     return reference
 
 
-def basin_differences_from_bias(bias, basins: Basins, *, times=None, n_points: int = 20, reference=0,
-                                progress: Callable[[int, int], None] | None = None) -> BasinDifferences:
+def basin_differences_from_bias(bias, basins: Basins, *, times=None, n_hills=None, n_points: int = 20,
+                                reference=0, progress: Callable[[int, int], None] | None = None
+                                ) -> BasinDifferences:
     """Basin free-energy differences from the bias estimate at past times.
 
     Parameters
     ----------
     bias : GridBias
-        Its hill history must carry times (ps) unless the run is summarised only at its end.
     basins : Basins
         On the bias grid.
     times : (m,) float, ps, keyword-only, optional
-        Moments; default ``n_points`` evenly spaced from the first to the last hill.
+        Moments (the hill history must carry times). Or give
+    n_hills : (m,) int, keyword-only, optional
+        Hill counts. With neither: ``n_points`` moments evenly spaced over the run, in time when every
+        hill carries a time, otherwise in hill count (``times`` are then NaN).
     n_points : int, keyword-only, default 20
     reference : int or str, keyword-only, default 0
         Reference basin (index or name).
@@ -113,9 +116,13 @@ def basin_differences_from_bias(bias, basins: Basins, *, times=None, n_points: i
     if basins.grid != bias.grid:
         raise ParameterError(
             f"basins were defined on another grid: {bias.grid.describe_difference(basins.grid)}")
-    if times is None:
-        times = evenly_spaced_times(bias, n_points)
-    counts, stamps = _counts_from(bias, times, None)
+    if times is None and n_hills is None:
+        if bias.n_hills and np.isfinite(bias.history.times).all():
+            times = evenly_spaced_times(bias, n_points)
+        else:
+            n_points = as_count("n_points", n_points, 1)
+            n_hills = np.unique(np.rint(np.linspace(0, bias.n_hills, n_points + 1)[1:]).astype(np.int64))
+    counts, stamps = _counts_from(bias, times, n_hills)
     factor = 1.0 if bias.bias_factor is None else bias.bias_factor / (bias.bias_factor - 1.0)
     out = np.empty((counts.size, basins.n_basins))
     for done, (i, partial) in enumerate(_replay(bias, counts), start=1):
