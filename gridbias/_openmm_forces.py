@@ -29,7 +29,7 @@ import numpy as np
 
 from .errors import ParameterError
 
-__all__ = ["PERIODIC_PADDING", "TableLayout", "EngineBias"]
+__all__ = ["PERIODIC_PADDING", "TableLayout", "EngineBias", "require_openmm", "same_object"]
 
 #: Wrapped nodes added on each side of a periodic axis inside a mixed-periodicity table. DESIGN.md
 #: measured the padded-vs-periodic spline difference at k=4: 2e-5 (energy) / 1e-3 (force) of a surface's
@@ -108,6 +108,25 @@ class TableLayout:
     def make_function(self, openmm, values):
         cls = (openmm.Continuous1DFunction, openmm.Continuous2DFunction, openmm.Continuous3DFunction)[self.ndim - 1]
         return cls(*self.function_arguments(values), self.periodic)
+
+
+def require_openmm():
+    """The openmm module, or ImportError naming the pip extra."""
+    try:
+        import openmm
+    except ImportError as exc:
+        raise ImportError(
+            "gridbias.openmm needs the OpenMM package; install it with: pip install 'gridbias[openmm]' "
+            "(or conda install -c conda-forge openmm)") from exc
+    return openmm
+
+
+def same_object(a, b) -> bool:
+    """True when two OpenMM proxies wrap the same C++ object."""
+    try:
+        return a.this == b.this
+    except AttributeError:
+        return a is b
 
 
 def _wall_terms(walls):

@@ -1,0 +1,419 @@
+"""The run-time side of the OpenMM adapter (private; built by ``gridbias.openmm.attach``): reading CVs,
+depositing, keeping the engine's copy of the bias in step, checkpoints and the reporter."""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import time as _time
+import warnings
+import weakref
+
+import numpy as np
+
+from ._openmm_forces import require_openmm, same_object
+from .bias import GridBias
+from .errors import CheckpointError, GridBiasError, ParameterError
+
+__all__ = ["BiasLink", "BiasReporter", "CHECKPOINT_KIND"]
+
+#: The ``kind`` of a run checkpoint written by ``BiasLink.save`` (gridbias.checkpoint container).
+CHECKPOINT_KIND = "gridbias.openmm-run"
+_CHECKPOINT_VERSION = 1
+
+_log = logging.getLogger("gridbias.openmm")
+
+
+# ------------------------------------------------------------------------------------------------- link
+class BiasLink:
+    """A GridBias applied to one OpenMM System: reads CVs, deposits, pushes, saves and restores.
+
+    Made by :func:`attach`. ``link.bias`` is the live bias (after ``restore`` it is the restored one).
+
+    Guarantees: after ``restore`` the engine applies exactly the bias it applied when the checkpoint was
+    written (table and pending hills), so a continuation on the same platform is bit-for-bit the
+    uninterrupted run where the platform itself is deterministic (Reference; CPU with one thread and
+    no PME). Writing a checkpoint never changes the trajectory.
+    """
+
+    def __init__(self, system, cvs, bias, engine, force_group, name):
+        self.system = system
+        self.cvs = tuple(cvs)
+        self.force_group = force_group
+        self.name = name
+        self._bias = bias
+        self._engine = engine
+        self._context = None  # the Context the engine state below belongs to
+        self._folded_values = np.array(bias.values, copy=True)
+        self._n_folded = bias.n_hills
+        self._n_pending = 0
+        self._engine_cvs = [i for i, cv in enumerate(self.cvs) if not cv.geometric]
+        self._reporters = weakref.WeakSet()
+
+    # -- properties -------------------------------------------------------------------------------
+    bias = property(lambda self: self._bias, doc="The GridBias being applied (replaced by restore).")
+    forces = property(lambda self: tuple(self._engine.forces), doc="The forces added to the System.")
+    pending_hills = property(lambda self: self._engine.pending, doc="Hills held as Gaussians between pushes.")
+    route = property(lambda self: self._engine.route, doc="'compound' or 'cvforce'.")
+
+    def labels(self) -> list:
+        """CV names (the ``name=`` given to a builder, else cv0, cv1, ...)."""
+        return [cv.label(i) for i, cv in enumerate(self.cvs)]
+
+    def describe_cvs(self) -> list:
+        return [cv.describe() for cv in self.cvs]
+
+    # -- CVs --------------------------------------------------------------------------------------
+    def cv_values(self, simulation, state=None) -> np.ndarray:
+        """The CV values (d,) in nm/rad for the Context's current positions (or a given State)."""
+        context = _context_of(simulation)
+        pos_n3 = box = None
+        if any(cv.geometric for cv in self.cvs):
+            if state is None:
+                state = context.getState(getPositions=True)
+            pos_n3 = np.asarray(state.getPositions(asNumpy=True)._value)
+            if self.system.usesPeriodicBoundaryConditions():
+                box = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value)
+        s = np.empty(len(self.cvs))
+        for i, cv in enumerate(self.cvs):
+            if cv.geometric:
+                s[i] = cv.value(pos_n3, box)
+        if self._engine_cvs:
+            values = self._engine.table_force.getCollectiveVariableValues(context)
+            for i in self._engine_cvs:
+                s[i] = values[i]
+        return s
+
+    def bias_energy(self, simulation) -> float:
+        """The bias energy the engine applies now, kJ/mol (its force group's energy)."""
+        state = _context_of(simulation).getState(getEnergy=True, groups={self.force_group})
+        return float(state.getPotentialEnergy()._value)
+
+    # -- engine state -----------------------------------------------------------------------------
+    def _bind(self, context):
+        """Make sure the engine in ``context`` applies the current bias (first use, or a new Context)."""
+        if self._context is context and self._n_folded + self._n_pending == self._bias.n_hills:
+            return
+        if not same_object(context.getSystem(), self.system):
+            raise ParameterError("this simulation's System is not the one the bias was attached to; "
+                                 "call gbo.attach on the System you pass to the Simulation")
+        self._fold(context)
+
+    def _fold(self, context):
+        try:
+            self._engine.push_table(context, self._bias.values)
+        except Exception as exc:
+            if "not present in the Context" in str(exc):
+                raise ParameterError(
+                    "the bias forces are not in this Context: call gbo.attach(system, ...) before creating "
+                    "the Simulation or Context (or call context.reinitialize(preserveState=True) after "
+                    "attaching)") from exc
+            raise
+        self._engine.clear_slots(context, self._engine.pending if self._context is not context else self._n_pending)
+        self._context = context
+        self._folded_values = np.array(self._bias.values, copy=True)
+        self._n_folded = self._bias.n_hills
+        self._n_pending = 0
+
+    def deposit(self, simulation, s=None, *, time=None) -> float:
+        """Deposit one hill at the current CVs (or at ``s``) and update the engine. Returns the height."""
+        context = _context_of(simulation)
+        self._bind(context)
+        if s is None:
+            s = self.cv_values(context)
+        if time is None:
+            time = float(context.getState().getTime()._value)
+        h = self._bias.deposit(s, time=time)
+        if h > 0.0:
+            if self._n_pending < self._engine.pending:
+                self._engine.set_slot(context, self._n_pending, self._bias.history.centers[-1], h)
+                self._n_pending += 1
+            else:
+                self._fold(context)
+        return h
+
+    # -- checkpoints ------------------------------------------------------------------------------
+    def reporter(self, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None):
+        """A reporter that deposits every ``stride`` steps; see :class:`BiasReporter`."""
+        rep = BiasReporter(self, stride, checkpoint=checkpoint, checkpoint_every=checkpoint_every, log=log,
+                           log_every=log_every)
+        self._reporters.add(rep)
+        return rep
+
+    def save(self, simulation, path) -> None:
+        """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state."""
+        from .checkpoint import write_checkpoint
+
+        openmm = require_openmm()
+        context = _context_of(simulation)
+        self._bind(context)
+        state = context.getState(getPositions=True, getVelocities=True)
+        bias_meta, bias_arrays = self._bias.to_state()
+        meta = {
+            "version": _CHECKPOINT_VERSION,
+            "bias": bias_meta,
+            "cvs": self.describe_cvs(),
+            "labels": self.labels(),
+            "n_particles": self.system.getNumParticles(),
+            "platform": context.getPlatform().getName(),
+            "openmm_version": openmm.__version__,
+            "step": int(context.getStepCount()),
+            "time_ps": float(state.getTime()._value),
+            "engine": {"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
+                       "n_pending": self._n_pending, "name": self.name},
+            "written": _time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        }
+        arrays = {f"bias.{k}": np.ascontiguousarray(v) for k, v in bias_arrays.items()}
+        arrays["engine.folded_values"] = self._folded_values
+        arrays["md.checkpoint"] = np.frombuffer(context.createCheckpoint(), dtype=np.uint8)
+        arrays["md.positions"] = np.asarray(state.getPositions(asNumpy=True)._value, dtype=float)
+        arrays["md.velocities"] = np.asarray(state.getVelocities(asNumpy=True)._value, dtype=float)
+        arrays["md.box"] = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value, dtype=float)
+        write_checkpoint(path, meta, arrays, kind=CHECKPOINT_KIND)
+
+    def restore(self, simulation, path) -> dict:
+        """Continue from a checkpoint: restores the bias, the MD state and the engine's bias exactly.
+
+        The engine's own checkpoint bytes are used when the platform matches; otherwise the portable
+        state (positions, velocities, box, step, time) with a logged notice (the run then continues
+        correctly but not bit-for-bit: the integrator's random state is not portable). Refuses a file
+        written for another System (CVs, particle count) or another bias (grid, widths, walls...),
+        saying which. CV logs of this link's reporters are cut back to the checkpoint's step.
+
+        Returns
+        -------
+        dict : the checkpoint's metadata (step, time_ps, platform, ...).
+        """
+        from .checkpoint import read_checkpoint
+
+        context = _context_of(simulation)
+        meta, arrays = read_checkpoint(path, kind=CHECKPOINT_KIND)
+        try:
+            self._check_compatible(meta, path)
+            bias = GridBias.from_state(meta["bias"], {k[5:]: v for k, v in arrays.items() if k.startswith("bias.")})
+            folded = arrays["engine.folded_values"]
+            n_folded = int(meta["engine"]["n_folded"])
+        except KeyError as exc:
+            raise CheckpointError(f"{path}: checkpoint is incomplete (missing {exc})") from exc
+        self._check_bias(bias, path)
+        if folded.shape != tuple(bias.grid.shape) or not 0 <= n_folded <= bias.n_hills:
+            raise CheckpointError(f"{path}: engine table of shape {folded.shape} / n_folded={n_folded} does not "
+                                  f"fit the bias (grid shape {bias.grid.shape}, {bias.n_hills} hills)")
+        platform = context.getPlatform().getName()
+        if meta["platform"] == platform:
+            try:
+                context.loadCheckpoint(arrays["md.checkpoint"].tobytes())
+                exact = True
+            except Exception as exc:  # another OpenMM build or CPU: fall back to the portable state
+                _log.warning("%s: the engine could not load its own checkpoint (%s); continuing from the "
+                             "portable state (not bit-for-bit)", path, exc)
+                exact = False
+        else:
+            _log.warning("%s was written on the %s platform and is restored on %s: continuing from the portable "
+                         "state (positions, velocities, box, step, time), not bit-for-bit", path, meta["platform"],
+                         platform)
+            exact = False
+        if not exact:
+            self._load_portable(context, meta, arrays)
+        self._bias = bias
+        self._install(context, folded, n_folded)
+        for rep in list(self._reporters):
+            rep._restored(int(meta["step"]))
+        return meta
+
+    def _install(self, context, folded, n_folded):
+        """Put exactly the engine state of the checkpoint into ``context``: table + pending hills."""
+        pending = self._bias.n_hills - n_folded
+        if pending > self._engine.pending:  # the checkpoint came from a link with more slots: fold all
+            _log.info("restoring %d pending hills into a link with %d slots: folding them into the table",
+                      pending, self._engine.pending)
+            self._context = context
+            self._fold(context)
+            return
+        self._engine.push_table(context, folded)
+        self._engine.clear_slots(context, self._engine.pending)
+        centers, heights = self._bias.history.centers, self._bias.history.heights
+        for j in range(pending):
+            self._engine.set_slot(context, j, centers[n_folded + j], heights[n_folded + j])
+        self._context = context
+        self._folded_values = np.array(folded, copy=True)
+        self._n_folded = n_folded
+        self._n_pending = pending
+
+    def _check_compatible(self, meta, path):
+        if int(meta["version"]) > _CHECKPOINT_VERSION:
+            raise CheckpointError(f"{path}: written by a newer gridbias (format {meta['version']}); upgrade")
+        n = self.system.getNumParticles()
+        if int(meta["n_particles"]) != n:
+            raise CheckpointError(f"{path} was written for a System of {meta['n_particles']} particles; this "
+                                  f"System has {n}")
+        mine = self.describe_cvs()
+        theirs = meta["cvs"]
+        if len(theirs) != len(mine):
+            raise CheckpointError(f"{path} holds {len(theirs)} CVs; this link has {len(mine)}")
+        for i, (a, b) in enumerate(zip(mine, theirs)):
+            if a != b:
+                raise CheckpointError(f"{path}: CV {i} differs: checkpoint {b}, this link {a}")
+
+    def _check_bias(self, other, path):
+        mine = self._bias
+        diff = mine.grid.describe_difference(other.grid)
+        if diff:
+            raise CheckpointError(f"{path}: the grid differs (this bias vs checkpoint): {diff}")
+        for field in ("sigma", "height", "temperature", "bias_factor", "cutoff", "walls"):
+            a, b = getattr(mine, field), getattr(other, field)
+            same = np.array_equal(a, b) if field == "sigma" else a == b
+            if not same:
+                show = (lambda w: [x.to_dict() for x in w]) if field == "walls" else (
+                    lambda x: np.asarray(x).tolist() if x is not None else None)
+                raise CheckpointError(f"{path}: the bias {field} differs: this run {show(a)}, checkpoint {show(b)}")
+
+    @staticmethod
+    def _load_portable(context, meta, arrays):
+        box = arrays["md.box"]
+        context.setPeriodicBoxVectors(*[tuple(float(x) for x in row) for row in box])
+        context.setPositions(arrays["md.positions"])
+        context.setVelocities(arrays["md.velocities"])
+        context.setTime(float(meta["time_ps"]))
+        context.setStepCount(int(meta["step"]))
+
+
+def _context_of(simulation):
+    return simulation.context if hasattr(simulation, "context") else simulation
+
+
+# --------------------------------------------------------------------------------------------- reporter
+class BiasReporter:
+    """An OpenMM reporter that grows the bias during ``simulation.step``.
+
+    Every ``stride`` steps it reads the CVs, deposits a hill and updates the engine; every
+    ``checkpoint_every`` steps it writes the checkpoint (after that step's deposit); every ``log_every``
+    steps (default ``stride``) it appends ``step, time, CVs, bias`` to the CV log, the bias being the one
+    in effect during that step (before its deposit). It holds a CheckpointLock on the checkpoint path
+    until ``close()`` (or until it is garbage-collected).
+
+    NaN CV values stop the run with an error naming the step and the last checkpoint written.
+    """
+
+    def __init__(self, link, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None):
+        self._link = link
+        self.stride = _steps("stride", stride)
+        if checkpoint is None and checkpoint_every is not None:
+            raise ParameterError("checkpoint_every needs checkpoint= (a file path)")
+        if checkpoint is not None and checkpoint_every is None:
+            raise ParameterError("checkpoint= needs checkpoint_every= (steps between checkpoints)")
+        self.checkpoint = None if checkpoint is None else os.fspath(checkpoint)
+        self.checkpoint_every = None if checkpoint_every is None else _steps("checkpoint_every", checkpoint_every)
+        if log is None and log_every is not None:
+            raise ParameterError("log_every needs log= (a file path)")
+        self.log = None if log is None else os.fspath(log)
+        self.log_every = None if log is None else _steps("log_every", self.stride if log_every is None else log_every)
+        self.last_checkpoint_step = None
+        self._restored_step = None
+        self._started = False
+        self._writer = None
+        self._lock = None
+        if self.checkpoint is not None:
+            from .checkpoint import CheckpointLock
+
+            self._lock = CheckpointLock(self.checkpoint).acquire()
+            self._finalizer = weakref.finalize(self, self._lock.release)
+
+    def _due(self, step, every):
+        return every is not None and step % every == 0
+
+    def describeNextReport(self, simulation):
+        step = simulation.currentStep
+        if not self._started:
+            self._start(simulation)
+        steps = min(e - step % e for e in (self.stride, self.checkpoint_every, self.log_every) if e is not None)
+        nxt = step + steps
+        need_cvs = self._due(nxt, self.stride) or self._due(nxt, self.log_every)
+        include = ["positions"] if need_cvs and any(cv.geometric for cv in self._link.cvs) else []
+        return {"steps": steps, "periodic": False, "include": include}
+
+    def _start(self, simulation):
+        link = self._link
+        link._bind(simulation.context)
+        s = link.cv_values(simulation)
+        grid = link.bias.grid
+        if not np.isfinite(s).all():
+            raise GridBiasError(f"the starting CV values are not finite: {s.tolist()}")
+        if not grid.contains(s):
+            warnings.warn(f"the starting CV values {s.tolist()} ({link.labels()}) are outside the grid "
+                          f"({grid.lower.tolist()} .. {grid.upper.tolist()}): no hills are deposited there and "
+                          "the grid part of the bias is zero; widen the grid or start elsewhere", stacklevel=4)
+        integrator = simulation.integrator
+        if hasattr(integrator, "getTemperature"):
+            t = integrator.getTemperature()
+            t = float(t._value) if hasattr(t, "_value") else float(t)
+            if not math.isclose(t, link.bias.temperature, rel_tol=1e-6):
+                warnings.warn(f"the integrator runs at {t} K but the bias was made for {link.bias.temperature} K; "
+                              "well-tempered heights and free energies use the bias temperature", stacklevel=4)
+        if self.log is not None:
+            from .cvlog import CVLogWriter
+
+            labels = link.labels()
+            columns = ["step", "time"] + labels + ["bias"]
+            units = ["1", "ps"] + [cv.unit for cv in link.cvs] + ["kJ/mol"]
+            meta = {"cvs": link.describe_cvs(), "grid": grid.to_dict(), "temperature": link.bias.temperature,
+                    "bias_factor": link.bias.bias_factor, "stride": self.stride}
+            self._writer = CVLogWriter(self.log, columns, units, meta)
+            if self._restored_step is not None:
+                self._writer.truncate_after(self._restored_step)
+            elif self._writer.n_records:
+                from .cvlog import read_cvlog
+
+                last = float(read_cvlog(self.log, mmap=True).column("step")[-1])
+                if last > simulation.currentStep:
+                    self._writer.close()
+                    self._writer = None
+                    raise ParameterError(
+                        f"CV log {self.log!r} already holds records up to step {last:.0f}, beyond the current "
+                        f"step {simulation.currentStep}: restore the run first (link.restore) or use a new log")
+        self._started = True
+
+    def _restored(self, step):
+        self._restored_step = step
+        if self._writer is not None:
+            self._writer.truncate_after(step)
+
+    def report(self, simulation, state):
+        link = self._link
+        step = simulation.currentStep
+        deposit_due = self._due(step, self.stride)
+        log_due = self._due(step, self.log_every)
+        if deposit_due or log_due:
+            s = link.cv_values(simulation, state)
+            if not np.isfinite(s).all():
+                where = (f"the last checkpoint is {self.checkpoint!r} at step {self.last_checkpoint_step}"
+                         if self.last_checkpoint_step is not None else "no checkpoint was written by this run")
+                raise GridBiasError(f"CV values are not finite at step {step}: {s.tolist()} "
+                                    f"({link.labels()}); the simulation has blown up. Stopping; {where}")
+            t = float(state.getTime()._value)
+            if log_due:
+                energy, _ = link.bias.evaluate(s)
+                self._writer.write([[float(step), t, *s.tolist(), energy]])
+            if deposit_due:
+                link.deposit(simulation, s, time=t)
+        if self._due(step, self.checkpoint_every):
+            if self._writer is not None:
+                self._writer.flush()
+            link.save(simulation, self.checkpoint)
+            self.last_checkpoint_step = step
+
+    def close(self):
+        """Release the checkpoint lock and close the CV log."""
+        if self._writer is not None:
+            self._writer.close()
+            self._writer = None
+        if self._lock is not None:
+            self._finalizer()
+            self._lock = None
+
+
+def _steps(name, value):
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+        raise ParameterError(f"{name} must be an integer number of steps >= 1, got {value!r}")
+    return int(value)
