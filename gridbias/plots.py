@@ -202,7 +202,7 @@ def _mark_basins(ax, basins, scales, ndim, curve=None, shown=None):
                    colors="white", linewidths=0.9, linestyles="dotted")
 
 
-def plot_free_energy(result, *, ax=None, basins=None, names=(), angle_unit: str = "rad",
+def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, angle_unit: str = "rad",
                      energy_unit: str = "kJ/mol", max_free_energy: float | None = None, level_step=None):
     """Plot a free-energy profile (1-D curve with error band) or surface (2-D filled contours).
 
@@ -216,8 +216,11 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angle_unit: str 
         Marked by name at their minimum (or box centre); boxes outlined, catchment borders dotted (2-D).
     names : sequence of str, keyword-only
         Axis labels (default the Profile's names, else "CV 1", "CV 2"); give units for non-angular axes.
+    angular : sequence of bool, keyword-only, optional
+        Which axes are angles (drawn in ``angle_unit``); default a Surface's periodic axes, none for a
+        Profile.
     angle_unit : {"rad", "deg"}, keyword-only
-        Unit of periodic axes (a Surface's periodic axes are angles).
+        Unit of the angular axes.
     energy_unit : {"kJ/mol", "kBT"}, keyword-only
         Main energy unit; the other one is shown on a second axis.
     max_free_energy : float, keyword-only, optional
@@ -233,10 +236,13 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angle_unit: str 
 
     from .analysis import Surface
 
-    coords, fes, error, kT, angular, default_names = _surface_data(result)
+    coords, fes, error, kT, periodic, default_names = _surface_data(result)
     ndim = fes.ndim
     if ndim not in (1, 2):
         raise ParameterError(f"only 1-D and 2-D results can be plotted, got {ndim}-D")
+    angular = periodic if angular is None else [bool(a) for a in angular]
+    if len(angular) != ndim:
+        raise ParameterError(f"angular must give one True/False per axis ({ndim}), got {angular!r}")
     labels, scales = _axis_labels(names or default_names, ndim, angular, angle_unit)
     factor, unit = _energy_scale(energy_unit, kT)
     figure, ax = _figure_and_axes(ax, 6.4, 4.4 if ndim == 1 else 5.0)

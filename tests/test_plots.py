@@ -59,6 +59,9 @@ def test_profile_gets_an_error_band_of_one_standard_error(tmp_path, rng):
     assert band[:, 1].max() == pytest.approx(np.nanmax(profile.free_energy + profile.error))
     assert ax.get_xlabel() == "distance (nm)"
     check_files(figure, tmp_path, "profile")
+    as_angle = plots.plot_free_energy(profile, names=["theta"], angular=[True], angle_unit="deg").axes[0]
+    np.testing.assert_allclose(as_angle.lines[0].get_xdata(), np.degrees(profile.centers[0]))
+    assert as_angle.get_xlabel() == "theta (deg)"
 
 
 def test_2d_surface_in_degrees_with_basins_and_both_energy_units(tmp_path):
