@@ -142,13 +142,22 @@ class BiasLink:
         return rep
 
     def save(self, simulation, path) -> None:
-        """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state."""
+        """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state.
+
+        The file (a gridbias.checkpoint container of kind ``CHECKPOINT_KIND``) is replaced atomically.
+        Nothing is written when positions or velocities are not finite (the last good file stays).
+        """
         from .checkpoint import write_checkpoint
 
         openmm = require_openmm()
         context = _context_of(simulation)
         self._bind(context)
         state = context.getState(getPositions=True, getVelocities=True)
+        positions = np.asarray(state.getPositions(asNumpy=True)._value, dtype=float)
+        velocities = np.asarray(state.getVelocities(asNumpy=True)._value, dtype=float)
+        if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
+            raise GridBiasError(f"positions or velocities are not finite at step {context.getStepCount()}: the "
+                                f"simulation has blown up; {os.fspath(path)!r} was not overwritten")
         bias_meta, bias_arrays = self._bias.to_state()
         meta = {
             "version": _CHECKPOINT_VERSION,
@@ -167,8 +176,8 @@ class BiasLink:
         arrays = {f"bias.{k}": np.ascontiguousarray(v) for k, v in bias_arrays.items()}
         arrays["engine.folded_values"] = self._folded_values
         arrays["md.checkpoint"] = np.frombuffer(context.createCheckpoint(), dtype=np.uint8)
-        arrays["md.positions"] = np.asarray(state.getPositions(asNumpy=True)._value, dtype=float)
-        arrays["md.velocities"] = np.asarray(state.getVelocities(asNumpy=True)._value, dtype=float)
+        arrays["md.positions"] = positions
+        arrays["md.velocities"] = velocities
         arrays["md.box"] = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value, dtype=float)
         write_checkpoint(path, meta, arrays, kind=CHECKPOINT_KIND)
 
