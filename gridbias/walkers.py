@@ -33,9 +33,9 @@ Rules for the run
   example a run limited by wall-clock time rather than by a step count) leaves the others waiting for it at
   their last exchange: give every walker the same number of steps.
 - If a walker dies (an exception, a crash, a killed node), the whole MPI job is aborted: MPI stops every rank
-  of a job when one is killed, and :func:`share` installs a hook that turns an uncaught Python exception into
-  ``MPI_Abort`` (otherwise the other walkers would wait in the next exchange forever). The last checkpoints are
-  complete files (written atomically) and the set of walkers restarts from them.
+  of a job when one is killed, and :func:`share` installs a hook that turns an uncaught Python exception
+  into ``MPI_Abort`` (otherwise the other walkers would wait in the next exchange forever). The last
+  checkpoints are complete files (written atomically) and the set of walkers restarts from them.
 """
 
 from __future__ import annotations
@@ -198,11 +198,15 @@ class SharedBias(GridBias):
 
     def _join(self):
         """Collective: every walker must hold the same bias (state and exchange count)."""
-        table = self._collective(_JOIN, self._fingerprint_words())
+        self._compare_states(_JOIN)
+
+    def _compare_states(self, op, consequence=""):
+        """Collective: raise WalkerSyncError on every walker unless all hold the same state (SHA-256)."""
+        table = self._collective(op, self._fingerprint_words())
         fingerprints = table[:, 2:2 + _FINGERPRINT_WORDS].view(np.uint64)
         if (fingerprints != fingerprints[0]).any():
             summaries = self._comm.allgather(self._summary())
-            raise WalkerSyncError(_describe_difference(summaries))
+            raise WalkerSyncError(_describe_difference(summaries) + consequence)
 
     @classmethod
     def load(cls, path, comm=None, *, abort_on_error=True) -> "SharedBias":
@@ -269,7 +273,7 @@ class SharedBias(GridBias):
 
     # -- the exchange ---------------------------------------------------------------------------------
     def _collective(self, op, payload):
-        """Allgather one EXCHANGE_WIDTH row per walker: (op, exchange count, payload...); check op and count."""
+        """Allgather one row per walker, (op, exchange count, payload...); check op and count agree."""
         if self._comm is None:
             raise ParameterError("this SharedBias is not attached to walkers: make it with "
                                  "gridbias.walkers.share(bias) or SharedBias.load(path)")
@@ -281,9 +285,10 @@ class SharedBias(GridBias):
         self._comm.Allgather(row, table)
         ops, counts = table[:, 0], table[:, 1]
         if (ops != op).any():
-            calls = ", ".join(f"walker {r}: {_OP_NAMES.get(o, f'operation {o:g}')}" for r, o in enumerate(ops))
-            raise WalkerSyncError(f"the walkers are in different collective calls ({calls}); every walker must "
-                                  "call deposit(), save() and check_identical() in the same order")
+            calls = ", ".join(f"walker {r}: {_OP_NAMES.get(o, f'operation {o:g}')}"
+                              for r, o in enumerate(ops))
+            raise WalkerSyncError(f"the walkers are in different collective calls ({calls}); every walker "
+                                  "must call deposit(), save() and check_identical() in the same order")
         if (counts != counts[0]).any():
             where = ", ".join(f"walker {r}: {c:.0f}" for r, c in enumerate(counts))
             if op == _JOIN:
@@ -291,8 +296,8 @@ class SharedBias(GridBias):
                     f"the walkers' biases come from different moments (exchanges so far: {where}); restore "
                     "every walker from checkpoints written at the same step")
             raise WalkerSyncError(
-                f"the walkers are out of step at {_OP_NAMES[op]} (exchanges so far: {where}): every walker must "
-                "call deposit() at the same cadence (same stride and number of steps)")
+                f"the walkers are out of step at {_OP_NAMES[op]} (exchanges so far: {where}): every walker "
+                "must call deposit() at the same cadence (same stride and number of steps)")
         return table
 
     def deposit(self, s, *, time=None) -> float:
@@ -331,34 +336,31 @@ class SharedBias(GridBias):
             self._warned_own_outside = True
             warnings.warn(
                 f"walker {self._rank}: CV {s_d.tolist()} is outside the grid ({self.grid.lower.tolist()} .. "
-                f"{self.grid.upper.tolist()}): no hill from this walker this time (counted in n_outside, which "
-                "counts all walkers; warned once). Put walls about 3 sigma inside the grid edges.", stacklevel=2)
+                f"{self.grid.upper.tolist()}): no hill from this walker this time (counted in n_outside, "
+                "which counts all walkers; warned once). Put walls about 3 sigma inside the grid edges.",
+                stacklevel=2)
         return h
 
     def _check_cadence(self, times_n):
         """Warn once when the walkers' times advance by different amounts between two exchanges."""
         last, self._last_times = self._last_times, times_n.copy()
-        if last is None or self._warned_cadence or not np.isfinite(times_n).all() or not np.isfinite(last).all():
+        if last is None or self._warned_cadence or not np.isfinite(np.concatenate([last, times_n])).all():
             return
         advance_n = times_n - last
-        if not np.allclose(advance_n, advance_n[0], rtol=1e-9, atol=1e-12):
+        if advance_n.max() - advance_n.min() > 1e-9 * np.abs(advance_n).max() + 1e-12:
             self._warned_cadence = True
             per_walker = ", ".join(f"walker {r}: {a:g} ps" for r, a in enumerate(advance_n))
             warnings.warn(
-                f"the walkers' times advanced by different amounts since the last exchange ({per_walker}). If "
-                "they deposit at different strides, the run ends with some walkers waiting for the others' "
-                "missing deposits: give every walker the same stride, time step and number of steps "
-                "(warned once)", stacklevel=3)
+                f"the walkers' times advanced by different amounts since the last exchange ({per_walker}). "
+                "If they deposit at different strides, the run ends with some walkers waiting for the "
+                "others' missing deposits: give every walker the same stride, time step and number of "
+                "steps (warned once)", stacklevel=3)
 
     # -- checks and checkpoints -----------------------------------------------------------------------
     def check_identical(self) -> None:
-        """Raise WalkerSyncError unless every walker holds the same bias. Collective; costs one hash of the
-        state (about 1 ms per MB of grid and history) and one small exchange."""
-        table = self._collective(_CHECK, self._fingerprint_words())
-        fingerprints = table[:, 2:2 + _FINGERPRINT_WORDS].view(np.uint64)
-        if (fingerprints != fingerprints[0]).any():
-            summaries = self._comm.allgather(self._summary())
-            raise WalkerSyncError(_describe_difference(summaries))
+        """Raise WalkerSyncError unless every walker holds the same bias. Collective; costs one SHA-256 of
+        the state (a few ms per MB of grid and history) and one small exchange."""
+        self._compare_states(_CHECK)
 
     def save(self, path) -> None:
         """Write the shared bias to ``path`` (walker 0 writes, atomically). Collective.
@@ -370,11 +372,7 @@ class SharedBias(GridBias):
         """
         from .checkpoint import write_checkpoint
 
-        table = self._collective(_SAVE, self._fingerprint_words())
-        fingerprints = table[:, 2:2 + _FINGERPRINT_WORDS].view(np.uint64)
-        if (fingerprints != fingerprints[0]).any():
-            summaries = self._comm.allgather(self._summary())
-            raise WalkerSyncError(_describe_difference(summaries) + "; nothing was written")
+        self._compare_states(_SAVE, "; nothing was written")
         outcome = None
         if self._rank == 0:
             meta, arrays = self.to_state()
@@ -388,7 +386,7 @@ class SharedBias(GridBias):
             raise CheckpointError(f"walker 0 could not write the shared bias: {outcome}")
 
     def to_state(self):
-        """As ``GridBias.to_state``, plus ``meta["walkers"] = {"count": n_walkers, "exchanges": exchanges}``."""
+        """As ``GridBias.to_state``; ``meta["walkers"]`` adds ``{"count": n_walkers, "exchanges": ...}``."""
         meta, arrays = super().to_state()
         meta["walkers"] = {"count": self._size, "exchanges": self._exchanges}
         return meta, arrays
@@ -405,9 +403,10 @@ class SharedBias(GridBias):
 
     def _summary(self) -> dict:
         meta, _ = self.to_state()
+        counters = ("n_hills", "n_outside", "walkers")
+        parameters = {k: v for k, v in meta.items() if k not in counters}
         return {"walker": self._rank, "n_hills": self.n_hills, "exchanges": self._exchanges,
-                "parameters": {k: v for k, v in meta.items() if k not in ("n_hills", "n_outside", "walkers")},
-                "n_outside": self.n_outside}
+                "parameters": parameters, "n_outside": self.n_outside}
 
     def __repr__(self):
         base = super().__repr__()  # "GridBias(...)"
@@ -426,7 +425,8 @@ def _describe_difference(summaries) -> str:
                     f"{first['parameters'].get(k)!r}; every walker must make the same bias")
         for k in ("exchanges", "n_hills", "n_outside"):
             if other[k] != first[k]:
-                return (f"walker {w}'s bias differs from walker 0's: {k} {other[k]} vs {first[k]}; every walker "
-                        "must start from the same bias (restore all walkers from checkpoints of the same step)")
-    return ("the walkers' biases have the same parameters and hill counts but different grid values or hills: "
-            "add_hills() was called on some walkers only, or the walkers started from different biases")
+                return (f"walker {w}'s bias differs from walker 0's: {k} {other[k]} vs {first[k]}; every "
+                        "walker must start from the same bias (restore all walkers from checkpoints of the "
+                        "same step)")
+    return ("the walkers' biases have the same parameters and hill counts but different grid values or "
+            "hills: add_hills() was called on some walkers only, or they started from different biases")
