@@ -234,3 +234,19 @@ def test_openmm_walkers_restart_exactly_on_the_reference_platform(tmp_path):
         assert int(second["step"]) == int(full["step"]) == 950
         for key in ("positions", "velocities", "coefficients", "hill_centers", "hill_heights"):
             assert np.array_equal(full[key], second[key]), f"walker {r}: {key} differs after the restart"
+
+
+@needs_openmm
+@pytest.mark.openmm
+@ADAPTER_PENDING
+def test_walkers_example_runs_and_continues(tmp_path):
+    example = HERE.parent / "examples" / "walkers_openmm.py"
+    options = ["--stride", 50, "--checkpoint-every", 500, "--folder", tmp_path / "out"]
+    mpirun(["--steps", 1000, *options], script=example)
+    _, output = mpirun(["--steps", 1500, *options], script=example)
+    assert "continuing from step 1000 (40 hills, 2 walkers)" in output
+    assert "done: step 1500 per walker, 60 hills from 2 walkers" in output
+    from gridbias.checkpoint import read_checkpoint
+
+    meta, _ = read_checkpoint(tmp_path / "out" / "shared.gbz")
+    assert meta["n_hills"] == 60 and meta["walkers"] == {"count": 2, "exchanges": 30}
