@@ -63,7 +63,8 @@ found = comm.allgather(os.path.exists(checkpoint))
 if all(found):
     meta = link.restore(simulation, checkpoint)
     if rank == 0:
-        print(f"continuing from step {meta['step']} ({link.bias.n_hills} hills, {link.bias.n_walkers} walkers)")
+        print(f"continuing from step {meta['step']} ({link.bias.n_hills} hills, "
+              f"{link.bias.n_walkers} walkers)")
 elif any(found):
     missing = [r for r, ok in enumerate(found) if not ok]
     sys.exit(f"walker {rank}: checkpoints of walkers {missing} are missing in {args.folder!r}; run with the "
@@ -86,7 +87,8 @@ if rank == 0:
     try:
         from gridbias import analysis, plots
 
-        figure = plots.plot_free_energy(analysis.surface_at(link.bias), names=["phi", "psi"], angle_unit="deg")
+        surface = analysis.surface_at(link.bias)
+        figure = plots.plot_free_energy(surface, names=["phi", "psi"], angle_unit="deg")
         print("free-energy surface:", plots.save_figure(figure, os.path.join(args.folder, "free_energy.png")))
     except ImportError:
         print("install matplotlib to get the free-energy plot (pip install 'gridbias[plot]')")
