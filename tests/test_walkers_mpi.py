@@ -28,7 +28,6 @@ import pytest
 HERE = Path(__file__).resolve().parent
 SCRIPT = HERE / "mpi" / "walkers_langevin.py"
 OPENMM_SCRIPT = HERE / "mpi" / "walkers_openmm.py"
-HAVE_OPENMM = importlib.util.find_spec("openmm") is not None
 
 
 def _mpiexec():
@@ -36,14 +35,25 @@ def _mpiexec():
     return str(beside_python) if beside_python.exists() else shutil.which("mpiexec")
 
 
+def _installed(module):
+    try:
+        return importlib.util.find_spec(module) is not None
+    except (ImportError, ValueError):
+        return False
+
+
 MPIEXEC = _mpiexec()
-HAVE_MPI4PY = importlib.util.find_spec("mpi4py") is not None
+HAVE_MPI4PY = _installed("mpi4py")
+HAVE_OPENMM = _installed("openmm")
 
 pytestmark = [
     pytest.mark.mpi,
     pytest.mark.skipif(not HAVE_MPI4PY, reason="needs mpi4py (pip install 'gridbias[mpi]')"),
     pytest.mark.skipif(MPIEXEC is None, reason="needs an mpiexec launcher (pip install 'gridbias[mpi]')"),
 ]
+
+
+needs_jit = pytest.mark.skipif(numba.config.DISABLE_JIT, reason="needs compiled dynamics (minutes without JIT)")
 
 
 def _load_worker():
@@ -80,6 +90,7 @@ def exchange_run(tmp_path_factory):
     return ranks, info
 
 
+@needs_jit
 def test_two_mpi_walkers_hold_bit_identical_biases_after_many_exchanges(exchange_run):
     ranks, info = exchange_run
     assert info[0]["exchanges"] == info[1]["exchanges"] == 400
@@ -88,6 +99,7 @@ def test_two_mpi_walkers_hold_bit_identical_biases_after_many_exchanges(exchange
         assert ranks[0][name].tobytes() == ranks[1][name].tobytes(), name
 
 
+@needs_jit
 def test_the_shared_bias_is_the_union_of_the_walkers_hills_with_heights_from_the_shared_bias(exchange_run):
     # One process replays the exchanges: before each, every walker's well-tempered height from the bias as
     # it stood, then all hills in walker order. Everything must agree bit for bit.
@@ -112,6 +124,7 @@ def test_the_shared_bias_is_the_union_of_the_walkers_hills_with_heights_from_the
     assert info[0]["meta"]["n_hills"] == 800 - outside
 
 
+@needs_jit
 def test_walkers_in_different_collective_calls_all_raise(exchange_run):
     _, info = exchange_run
     for r in range(2):
@@ -151,7 +164,7 @@ def check_convergence(out, record_property):
     return ratio
 
 
-@pytest.mark.skipif(numba.config.DISABLE_JIT, reason="needs compiled dynamics (minutes without JIT)")
+@needs_jit
 def test_two_walkers_converge_to_the_published_limit_in_fewer_steps_per_walker(tmp_path, record_property):
     # Four seeds each; 6000 deposits for one walker, 3000 per walker for two (the same number of hills).
     mpirun(["converge", tmp_path, "--seeds", 4, "--deposits", 6000, "--every", 100])
@@ -160,7 +173,7 @@ def test_two_walkers_converge_to_the_published_limit_in_fewer_steps_per_walker(t
 
 
 @pytest.mark.slow
-@pytest.mark.skipif(numba.config.DISABLE_JIT, reason="needs compiled dynamics (minutes without JIT)")
+@needs_jit
 def test_steps_to_tolerance_ratio_over_sixteen_seeds(tmp_path, record_property):
     mpirun(["converge", tmp_path, "--seeds", 16, "--deposits", 6000, "--every", 100], timeout=900)
     ratio = check_convergence(tmp_path, record_property)
@@ -168,6 +181,7 @@ def test_steps_to_tolerance_ratio_over_sixteen_seeds(tmp_path, record_property):
 
 
 # --------------------------------------------------------------------------------------- faults and restart
+@needs_jit
 def test_a_killed_walker_aborts_the_job_and_the_set_restarts_exactly(tmp_path):
     # Walker 1 is killed inside a checkpoint (its own file written, the shared bias not yet): MPI stops the
     # job; the restart finds the last complete set (the shared bias and each walker's file of the same
