@@ -1,0 +1,924 @@
+"""The ``gridbias`` command (also ``python -m gridbias``).
+
+Subcommands:
+
+- ``demo``: well-tempered metadynamics of a dipeptide in vacuum, with a report (gridbias.demo.run).
+- ``inspect``: summarise a checkpoint: grid, CVs, hills, simulated time, height decay, basins, verdict.
+- ``export``: write the free-energy surface of a checkpoint as CSV, NumPy .npz, PNG, SVG or PDF.
+- ``reweight``: the free energy along chosen columns of a CV log, reweighted to the unbiased ensemble.
+
+Exit codes: 0 success; 1 the work itself failed or was interrupted (the simulation blew up, a disk filled,
+another run holds the checkpoint, Ctrl-C); 2 bad usage or bad input (unknown option, missing or
+unreadable file, a file of the wrong kind, an unknown column, a value out of range). Every error is one
+line on stderr; ``--traceback`` adds the Python traceback for bug reports.
+
+Units are OpenMM's: kJ/mol, nm, rad, ps, K. Angles are shown in degrees unless ``--angles rad``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import io
+import math
+import os
+import sys
+import time
+import traceback
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+__all__ = ["main", "build_parser", "CommandError", "ProgressLine", "format_duration", "Run", "load_run",
+           "read_log", "run_frames", "surface_bytes", "profile_bytes", "shown_profile", "figure_bytes",
+           "require_plots", "write_atomically"]
+
+EXIT_OK = 0
+EXIT_FAILED = 1
+EXIT_BAD_INPUT = 2
+
+_TABLE_FORMATS = ("csv", "npz")
+_FIGURE_FORMATS = ("png", "svg", "pdf")
+
+
+# ------------------------------------------------------------------------------------------------ errors
+class CommandError(Exception):
+    """A failure to report as one line on stderr with the given exit code."""
+
+    def __init__(self, message: str, code: int = EXIT_BAD_INPUT):
+        super().__init__(message)
+        self.code = code
+
+
+class _UsageError(Exception):
+    pass
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse that reports a usage error as one line instead of printing the usage and exiting."""
+
+    def error(self, message):
+        raise _UsageError(f"{message} (see '{self.prog} --help')")
+
+
+# ---------------------------------------------------------------------------------------------- progress
+class ProgressLine:
+    """A one-line progress display on a stream.
+
+    On a terminal the line is rewritten in place (at most every ``interval`` seconds). Elsewhere (a log
+    file, a pipe) a full line is written at most every ``plain_interval`` seconds, the first one only after
+    that long, so short tasks leave no trace in logs.
+
+    Parameters
+    ----------
+    stream : text stream, default sys.stderr
+    interval, plain_interval : float, s
+    """
+
+    def __init__(self, stream=None, *, interval: float = 0.25, plain_interval: float = 15.0):
+        self.stream = sys.stderr if stream is None else stream
+        self.live = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.interval = interval if self.live else plain_interval
+        self._last = -math.inf if self.live else time.monotonic()
+        self._width = 0
+        self._shown = False
+
+    def update(self, text: str, *, force: bool = False) -> None:
+        """Show ``text`` if the last update is older than the interval (or ``force``)."""
+        now = time.monotonic()
+        if not force and now - self._last < self.interval:
+            return
+        self._last = now
+        self._shown = True
+        if self.live:
+            self.stream.write("\r" + text + " " * max(self._width - len(text), 0))
+            self._width = len(text)
+        else:
+            self.stream.write(text + "\n")
+        self.stream.flush()
+
+    def finish(self, text: str | None = None) -> None:
+        """End the display: show ``text`` if given, or if anything was shown before; end the line."""
+        if text is not None and (self._shown or self.live):
+            self.update(text, force=True)
+        if self.live and self._width:
+            self.stream.write("\n")
+            self.stream.flush()
+        self._width = 0
+        self._shown = False
+
+    def counter(self, what: str):
+        """A ``progress(done, total)`` callback for the analysis functions."""
+        def report(done, total):
+            text = f"{what}: {done}/{total}"
+            if done < total:
+                self.update(text)
+            elif self._shown:
+                self.finish(text)
+        return report
+
+
+def format_duration(seconds: float) -> str:
+    """'42 s', '3 min 05 s', '1 h 02 min'."""
+    if not math.isfinite(seconds):
+        return "?"
+    seconds = max(0, int(round(seconds)))
+    if seconds < 60:
+        return f"{seconds} s"
+    if seconds < 3600:
+        return f"{seconds // 60} min {seconds % 60:02d} s"
+    return f"{seconds // 3600} h {seconds % 3600 // 60:02d} min"
+
+
+# ------------------------------------------------------------------------------------------------- runs
+_ANGLE_KINDS = ("dihedral", "angle")
+
+
+@dataclass(frozen=True)
+class Run:
+    """What a checkpoint holds, as the commands need it.
+
+    Attributes
+    ----------
+    path : str
+    bias : GridBias
+    names : tuple of str
+        CV names (``cv0, cv1, ...`` when the file does not name them).
+    units : tuple of str
+        CV units ("rad", "nm", or "" when unknown).
+    definitions : tuple of str
+        One phrase per CV ("dihedral of atoms 4-6-8-14"), or "" when unknown.
+    time_ps : float
+        Simulated time at the checkpoint (run checkpoints), else the time of the last hill (NaN if none).
+    step : int or None
+        MD step at the checkpoint (run checkpoints only).
+    source : str
+        "OpenMM run checkpoint" or "bias checkpoint".
+    platform : str or None
+    """
+
+    path: str
+    bias: object
+    names: tuple
+    units: tuple
+    definitions: tuple
+    time_ps: float
+    step: int | None
+    source: str
+    platform: str | None
+
+
+def _describe_cv(spec: dict) -> tuple[str, str]:
+    """(unit, phrase) for a CV description stored by the OpenMM adapter."""
+    kind = str(spec.get("kind", "?"))
+    if kind == "force":
+        return str(spec.get("unit", "")), f"energy of a {spec.get('class', 'force')}"
+    unit = "rad" if kind in _ANGLE_KINDS else "nm"
+    if "atoms" in spec:
+        atoms = "-".join(str(a) for a in spec["atoms"])
+        return unit, f"{kind.replace('_', ' ')} of atoms {atoms}"
+    if kind == "centroid_distance":
+        return unit, (f"distance between centroids of {len(spec.get('group1', []))} and "
+                      f"{len(spec.get('group2', []))} atoms")
+    return unit, kind.replace("_", " ")
+
+
+def load_run(path) -> Run:
+    """Read a checkpoint written by ``GridBias.save`` or by the OpenMM adapter (``BiasLink.save``).
+
+    Raises
+    ------
+    CheckpointError
+        Missing, unreadable, damaged or foreign file, or a checkpoint that holds no bias.
+    """
+    from .bias import GridBias
+    from .checkpoint import read_checkpoint
+    from .errors import CheckpointError
+
+    path = os.fspath(path)
+    meta, arrays = read_checkpoint(path)
+    if "bias" in meta and isinstance(meta["bias"], dict):  # a run checkpoint of the OpenMM adapter
+        bias_arrays = {k[len("bias."):]: v for k, v in arrays.items() if k.startswith("bias.")}
+        try:
+            bias = GridBias.from_state(meta["bias"], bias_arrays)
+        except CheckpointError as exc:
+            raise CheckpointError(f"checkpoint {path!r}: {exc}") from exc
+        specs = meta.get("cvs") or [{} for _ in range(bias.ndim)]
+        labels = meta.get("labels") or [f"cv{i}" for i in range(bias.ndim)]
+        described = [_describe_cv(s) for s in specs]
+        step = int(meta["step"]) if "step" in meta else None
+        return Run(path, bias, tuple(str(x) for x in labels), tuple(u for u, _ in described),
+                   tuple(p for _, p in described), float(meta.get("time_ps", math.nan)), step,
+                   "OpenMM run checkpoint", meta.get("platform"))
+    if meta.get("kind") == "gridbias.bias":
+        try:
+            bias = GridBias.from_state(meta, arrays)
+        except CheckpointError as exc:
+            raise CheckpointError(f"checkpoint {path!r}: {exc}") from exc
+        times = np.asarray(bias.history.times)
+        t_last = float(times[-1]) if times.size else math.nan
+        d = bias.ndim
+        return Run(path, bias, tuple(f"cv{i}" for i in range(d)), ("",) * d, ("",) * d, t_last, None,
+                   "bias checkpoint", None)
+    raise CheckpointError(f"checkpoint {path!r} holds no metadynamics bias (its metadata has neither a "
+                          "'bias' entry nor kind 'gridbias.bias')")
+
+
+# -------------------------------------------------------------------------------------------- display
+class _Display:
+    """How CV values are shown: angles in degrees or radians, other units as they are."""
+
+    def __init__(self, names, units, angles: str):
+        self.names = tuple(names)
+        self.cv_units = tuple(units)
+        self.degrees = tuple(u == "rad" and angles == "deg" for u in units)
+
+    def unit(self, i) -> str:
+        return "deg" if self.degrees[i] else self.cv_units[i]
+
+    def scale(self, i) -> float:
+        return 180.0 / math.pi if self.degrees[i] else 1.0
+
+    def suffix(self, i) -> str:
+        """' deg', ' nm', ... or '' when the unit is unknown."""
+        unit = self.unit(i)
+        return f" {unit}" if unit else ""
+
+    def label(self, i) -> str:
+        unit = self.unit(i)
+        return f"{self.names[i]} ({unit})" if unit else self.names[i]
+
+    def value(self, i, x) -> str:
+        return f"{x * self.scale(i):.4g}"
+
+    def to_cv(self, i, x) -> float:
+        """A value typed by the user in the display unit, in CV units."""
+        return x / self.scale(i)
+
+
+def _fmt(x, digits=4) -> str:
+    return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
+
+
+# -------------------------------------------------------------------------------------------- outputs
+def _check_outputs(paths, allowed, option):
+    """Validate output paths up front (extension, existing folder); return [(path, format)]."""
+    checked = []
+    for path in paths:
+        ext = os.path.splitext(path)[1].lower().lstrip(".")
+        if ext not in allowed:
+            raise CommandError(f"{option} {path!r}: the file type is taken from the extension, which must be "
+                               f"one of {', '.join('.' + a for a in allowed)}")
+        folder = os.path.dirname(os.path.abspath(path))
+        if not os.path.isdir(folder):
+            raise CommandError(f"{option} {path!r}: the folder {folder!r} does not exist")
+        if os.path.isdir(path):
+            raise CommandError(f"{option} {path!r} is a folder, not a file name")
+        checked.append((path, ext))
+    return checked
+
+
+def write_atomically(path, data: bytes) -> None:
+    """Write ``data`` to ``path`` through a temporary file and a rename (an old file survives a failure)."""
+    tmp = f"{path}.tmp-{os.getpid()}"
+    try:
+        with open(tmp, "wb") as f:
+            f.write(data)
+        os.replace(tmp, path)
+    except OSError as exc:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise CommandError(f"could not write {path!r}: {exc.strerror or exc}", EXIT_FAILED) from exc
+
+
+def _csv_bytes(header, columns) -> bytes:
+    buffer = io.StringIO()
+    np.savetxt(buffer, np.column_stack(columns), delimiter=",", header=",".join(header), comments="",
+               fmt="%.10g")
+    return buffer.getvalue().encode("utf-8")
+
+
+def _npz_bytes(arrays) -> bytes:
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    return buffer.getvalue()
+
+
+def figure_bytes(figure, fmt) -> bytes:
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format=fmt, dpi=150)
+    return buffer.getvalue()
+
+
+def require_plots():
+    try:
+        import matplotlib  # noqa: F401 - only to say clearly what is missing
+
+        from . import plots
+    except ImportError as exc:
+        raise CommandError(f"figures need matplotlib ({exc}); install it with: pip install 'gridbias[plot]'",
+                           EXIT_FAILED) from exc
+    return plots
+
+
+def _plot_names(names, units, periodic):
+    """Axis names for gridbias.plots: angles get their unit from the plot; other axes carry theirs."""
+    return tuple(f"{n} ({u})" if u and not p else n for n, u, p in zip(names, units, periodic, strict=True))
+
+
+def surface_bytes(surface, fmt, *, names, units, angles="deg", basins=None) -> bytes:
+    """A free-energy surface (analysis.Surface) as the bytes of a .csv, .npz or figure file.
+
+    CSV: one row per grid node, the CV columns (angles in ``angles``) then ``free_energy[kJ/mol]``.
+    NPZ: ``free_energy`` (grid shape, kJ/mol), ``axis0..`` node coordinates in CV units, ``names``,
+    ``units``, ``periodic``, ``lower``, ``upper``, ``kT``, ``bias_factor`` (NaN: standard), ``time_ps``,
+    ``n_hills``. Figures (png, svg, pdf): filled contours (2 CVs) or a curve (1 CV) by gridbias.plots,
+    with ``basins`` marked if given.
+    """
+    grid = surface.grid
+    show = _Display(names, units, angles)
+    if fmt == "csv":
+        nodes = grid.nodes().reshape(-1, grid.ndim)
+        header = [f"{names[i]}[{show.unit(i)}]" if show.unit(i) else names[i] for i in range(grid.ndim)]
+        header.append("free_energy[kJ/mol]")
+        columns = [nodes[:, i] * show.scale(i) for i in range(grid.ndim)]
+        columns.append(surface.free_energy.reshape(-1))
+        return _csv_bytes(header, columns)
+    if fmt == "npz":
+        arrays = {f"axis{i}": np.asarray(grid.axes[i]) for i in range(grid.ndim)}
+        gamma = math.nan if surface.bias_factor is None else surface.bias_factor
+        arrays.update(free_energy=surface.free_energy, names=np.array(names), units=np.array(units),
+                      periodic=np.asarray(grid.periodic), lower=np.asarray(grid.lower),
+                      upper=np.asarray(grid.upper), kT=np.float64(surface.kT), bias_factor=np.float64(gamma),
+                      time_ps=np.float64(surface.time), n_hills=np.int64(surface.n_hills))
+        return _npz_bytes(arrays)
+    plots = require_plots()
+    figure = plots.plot_free_energy(surface, basins=basins, names=_plot_names(names, units, grid.periodic),
+                                    angle_unit=angles)
+    return figure_bytes(figure, fmt)
+
+
+def profile_bytes(profile, fmt, *, units, angles="deg") -> bytes:
+    """A reweighted profile (analysis.Profile) as the bytes of a .csv, .npz or figure file.
+
+    CSV: one row per bin, the bin centres (angles in ``angles``), ``free_energy[kJ/mol]``,
+    ``error[kJ/mol]``, ``frames``. NPZ: ``edges0..``, ``centers0..`` (column units), ``free_energy``,
+    ``error``, ``probability``, ``counts``, ``plateau_found``, ``names``, ``units``, ``kT``,
+    ``effective_sample_size``. Figures (png, svg, pdf): made by gridbias.plots.
+    """
+    show = _Display(profile.names, units, angles)
+    if fmt == "csv":
+        mesh = np.meshgrid(*profile.centers, indexing="ij")
+        header = [f"{c}[{show.unit(i)}]" if show.unit(i) else c for i, c in enumerate(profile.names)]
+        header += ["free_energy[kJ/mol]", "error[kJ/mol]", "frames"]
+        columns = [m.reshape(-1) * show.scale(i) for i, m in enumerate(mesh)]
+        columns += [profile.free_energy.reshape(-1), profile.error.reshape(-1), profile.counts.reshape(-1)]
+        return _csv_bytes(header, columns)
+    if fmt == "npz":
+        arrays = {f"edges{i}": e for i, e in enumerate(profile.edges)}
+        arrays.update({f"centers{i}": c for i, c in enumerate(profile.centers)})
+        arrays.update(free_energy=profile.free_energy, error=profile.error, probability=profile.probability,
+                      counts=profile.counts, plateau_found=profile.plateau_found,
+                      names=np.array(profile.names), units=np.array(units), kT=np.float64(profile.kT),
+                      effective_sample_size=np.float64(profile.effective_sample_size))
+        return _npz_bytes(arrays)
+    plots = require_plots()
+    return figure_bytes(plots.plot_free_energy(shown_profile(profile, units, angles)), fmt)
+
+
+def shown_profile(profile, units, angles="deg"):
+    """The profile with its axes in the shown units (angles in degrees if asked) and named with them,
+    ready for gridbias.plots (which shows a profile's axes as they are)."""
+    show = _Display(profile.names, units, angles)
+    edges = tuple(e * show.scale(i) for i, e in enumerate(profile.edges))
+    names = tuple(show.label(i) for i in range(profile.ndim))
+    return replace(profile, edges=edges, names=names)
+
+
+# ----------------------------------------------------------------------------------------------- logs
+def read_log(path):
+    from .cvlog import read_cvlog
+
+    log = read_cvlog(path)
+    if log.n_records < 4:
+        raise CommandError(f"CV log {path!r} holds {log.n_records} complete records; at least 4 are needed")
+    return log
+
+
+def _log_column(log, name, option) -> np.ndarray:
+    if name not in log.columns:
+        raise CommandError(f"{option}: CV log {log.path!r} has no column {name!r}; its columns are "
+                           f"{', '.join(log.columns)}")
+    values = np.asarray(log.column(name), dtype=float)
+    if not np.isfinite(values).all():
+        bad = int(np.flatnonzero(~np.isfinite(values))[0])
+        raise CommandError(f"{option}: column {name!r} of CV log {log.path!r} holds {values[bad]} at record "
+                           f"{bad}; every value must be finite")
+    return values
+
+
+def run_frames(run, log, cv_columns=None, time_column="time"):
+    """(times (n,), cvs (n, d), bias (n,) or None, note) for the frames that belong to the run."""
+    names = cv_columns or list(run.names)
+    if len(names) != run.bias.ndim:
+        raise CommandError(f"--columns: give {run.bias.ndim} CV column names (the checkpoint has "
+                           f"{run.bias.ndim} CVs), got {len(names)}: {', '.join(names)}")
+    times = _log_column(log, time_column, "--time-column")
+    cvs = np.column_stack([_log_column(log, n, "--columns") for n in names])
+    logged_bias = _log_column(log, "bias", "bias column") if "bias" in log.columns else None
+    if (np.diff(times) < 0).any():
+        bad = int(np.flatnonzero(np.diff(times) < 0)[0]) + 1
+        raise CommandError(f"CV log {log.path!r}: column {time_column!r} goes back in time at record {bad} "
+                           f"({times[bad]} after {times[bad - 1]} ps); one run's frames in time order are "
+                           "needed")
+    note = ""
+    if np.isfinite(run.time_ps):
+        keep = times <= run.time_ps * (1 + 1e-12) + 1e-9
+        dropped = int((~keep).sum())
+        if dropped:
+            note = (f"{dropped} frames logged after the checkpoint's time ({run.time_ps:g} ps) were left "
+                    "out: the checkpoint does not hold the bias they felt")
+            times, cvs = times[keep], cvs[keep]
+            logged_bias = None if logged_bias is None else logged_bias[keep]
+    if times.size < 4:
+        raise CommandError(f"CV log {log.path!r} has {times.size} frames within the checkpoint's time; "
+                           "at least 4 are needed")
+    return times, cvs, logged_bias, note
+
+
+# ------------------------------------------------------------------------------------------------ inspect
+def _cmd_inspect(args) -> int:
+    from . import analysis
+
+    run = load_run(args.checkpoint)
+    bias = run.bias
+    frames, notes = None, []
+    if args.log is not None:
+        log = read_log(args.log)
+        t, cvs, logged_bias, note = run_frames(run, log, args.columns, args.time_column)
+        frames = (t, cvs, logged_bias)
+        notes += [note] if note else []
+        if not any(run.units):  # a bare bias checkpoint: the log knows the CVs' units
+            run = replace(run, units=tuple(log.unit(c) for c in (args.columns or run.names)))
+    show = _Display(run.names, run.units, args.angles)
+    out = []
+    add = out.append
+    add(f"checkpoint   {run.path}")
+    if run.step is not None:
+        platform = f", written on the {run.platform} platform" if run.platform else ""
+        add(f"contents     {run.source} (step {run.step:,}, {_fmt(run.time_ps, 8)} ps simulated{platform})")
+    else:
+        last = f", last hill at {_fmt(run.time_ps, 8)} ps" if np.isfinite(run.time_ps) else ""
+        add(f"contents     {run.source} (no MD state{last})")
+    if bias.bias_factor is None:
+        add(f"method       standard metadynamics, {bias.temperature:g} K (kBT = {bias.kT:.4g} kJ/mol)")
+    else:
+        add(f"method       well-tempered metadynamics, bias factor {bias.bias_factor:g}, "
+            f"{bias.temperature:g} K (kBT = {bias.kT:.4g} kJ/mol)")
+    grid = bias.grid
+    for i in range(bias.ndim):
+        head = "CVs" if i == 0 else ""
+        definition = f"{run.definitions[i]}, " if run.definitions[i] else ""
+        unit = run.units[i] or "units not recorded"
+        add(f"{head:<12} {run.names[i]}: {definition}{unit}")
+    for i in range(bias.ndim):
+        head = "grid" if i == 0 else ""
+        kind = "periodic" if grid.periodic[i] else "not periodic"
+        add(f"{head:<12} {run.names[i]}: {show.value(i, grid.lower[i])} .. {show.value(i, grid.upper[i])}"
+            f"{show.suffix(i)}, {int(grid.bins[i])} bins of {show.value(i, grid.spacing[i])}, {kind}")
+    widths = ", ".join(f"{run.names[i]} {show.value(i, bias.sigma[i])}{show.suffix(i)}"
+                       for i in range(bias.ndim))
+    add(f"hills        {bias.n_hills:,} deposited ({bias.n_outside} outside the grid); widths {widths}")
+    heights = np.asarray(bias.history.heights)
+    times = np.asarray(bias.history.times)
+    if heights.size:
+        recent = heights[-10:].mean()
+        decay = ""
+        if bias.bias_factor is not None:
+            decay = (f"; the last {min(10, heights.size)} average {recent:.4g} kJ/mol "
+                     f"({100 * recent / bias.height:.3g}% of the initial)")
+        add(f"height       initial {bias.height:g} kJ/mol{decay}")
+        if np.isfinite(times).all():
+            add(f"deposits     from {times[0]:g} to {times[-1]:g} ps")
+    else:
+        add(f"height       {bias.height:g} kJ/mol (no hills yet)")
+    if bias.walls:
+        for k, w in enumerate(bias.walls):
+            head = "walls" if k == 0 else ""
+            op = ">" if w.side == "above" else "<"
+            add(f"{head:<12} {run.names[w.cv]} {op} {show.value(w.cv, w.bound)}{show.suffix(w.cv)}: "
+                f"{w.k:g} kJ/mol per {run.units[w.cv] or 'unit'}^{w.power:g}")
+    else:
+        add("walls        none")
+    if bias.n_hills == 0:
+        add("")
+        add("No hills yet: there is no surface, no basin and no verdict to report.")
+        print("\n".join(out))
+        return EXIT_OK
+
+    surface = analysis.surface_at(bias)
+    basins = analysis.find_basins(grid, surface.free_energy, bias.kT, min_depth_kT=args.min_depth)
+    f_b = analysis.basin_free_energies(basins, surface.free_energy, bias.kT)
+    add("")
+    add(f"basins on the final surface (catchments of minima at least {args.min_depth:g} kBT deep):")
+    cols = "".join(f"{show.label(i):>14}" for i in range(bias.ndim))
+    add(f"  name{cols}{'F (kJ/mol)':>13}{'F (kBT)':>10}{'depth (kBT)':>13}")
+    for b, name in enumerate(basins.names):
+        pos = "".join(f"{show.value(i, basins.markers[b, i]):>14}" for i in range(bias.ndim))
+        depth = basins.depths[b] / bias.kT
+        add(f"  {name:<4}{pos}{f_b[b]:>13.3f}{f_b[b] / bias.kT:>10.3f}{_fmt(depth, 4):>13}")
+
+    progress = ProgressLine()
+    differences = analysis.basin_differences_from_bias(bias, basins, n_points=args.points,
+                                                        progress=progress.counter("replaying the hills"))
+    if basins.n_basins > 1:
+        add("")
+        add(differences.table())
+    if frames is not None and basins.n_basins > 1:
+        t, cvs, logged_bias = frames
+        kwargs = {"frame_bias": logged_bias} if logged_bias is not None else {"frame_cvs": cvs}
+        weights = analysis.offset_weights(bias, t, progress=progress.counter("reweighting the frames"),
+                                          **kwargs)
+        reweighted = analysis.basin_differences_from_frames(weights, t, cvs, basins, times=[t[-1]])
+        add("")
+        add(reweighted.table())
+        add(f"  ({weights.summary()})")
+    elif basins.n_basins > 1:
+        add("  (no error bars from the bias alone: add --log with the run's CV log for reweighted "
+            "differences with block-analysis errors)")
+    verdict = analysis.assess_convergence(
+        bias, basins, frame_times=None if frames is None else frames[0],
+        frame_cvs=None if frames is None else frames[1], differences=differences,
+        window_fraction=args.window, tolerance_kT=args.drift, min_transitions=args.transitions,
+        max_height_fraction=args.max_height)
+    add("")
+    add(verdict.render())
+    for note in notes:
+        add(f"  note: {note}")
+    print("\n".join(out))
+    return EXIT_OK
+
+
+# ------------------------------------------------------------------------------------------------ export
+def _cmd_export(args) -> int:
+    from . import analysis
+
+    outputs = _check_outputs(args.outputs, _TABLE_FORMATS + _FIGURE_FORMATS, "output")
+    run = load_run(args.checkpoint)
+    bias = run.bias
+    if bias.n_hills == 0:
+        raise CommandError(f"checkpoint {run.path!r} holds no hills yet: its free-energy surface is flat "
+                           "zero")
+    if args.time is not None:
+        surface = analysis.surface_at(bias, time=args.time)
+        if surface.n_hills == 0:
+            first = float(bias.history.times[0])
+            raise CommandError(f"--time {args.time:g} ps is before the first hill ({first:g} ps): there is "
+                               "no surface yet at that time")
+    elif args.hills is not None:
+        if not 0 < args.hills <= bias.n_hills:
+            raise CommandError(f"--hills must be 1..{bias.n_hills} (the hills in the checkpoint), got "
+                               f"{args.hills}")
+        surface = analysis.surface_at(bias, n_hills=args.hills)
+    else:
+        surface = analysis.surface_at(bias)
+    basins = None
+    if any(fmt in _FIGURE_FORMATS for _, fmt in outputs):
+        basins = analysis.find_basins(bias.grid, surface.free_energy, bias.kT)
+    for path, fmt in outputs:
+        data = surface_bytes(surface, fmt, names=run.names, units=run.units, angles=args.angles,
+                             basins=basins)
+        write_atomically(path, data)
+        print(f"wrote {path}")
+    what = f"{surface.n_hills:,} hills" + (f", t = {surface.time:g} ps" if np.isfinite(surface.time) else "")
+    print(f"free-energy surface of {run.path} ({what}), kJ/mol, minimum 0")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------------------------------- reweight
+def _dihedral_columns(log, run) -> set:
+    """Log columns known to hold a dihedral (-pi..pi): biased dihedral CVs, and observables the log's
+    metadata describes as dihedrals."""
+    meta = log.metadata if isinstance(log.metadata, dict) else {}
+    found = set()
+    for name, spec in zip(run.names, meta.get("cvs") or [], strict=False):  # a log may describe none
+        if isinstance(spec, dict) and spec.get("kind") == "dihedral":
+            found.add(name)
+    for spec in meta.get("observables") or []:
+        if isinstance(spec, dict) and spec.get("kind") == "dihedral":
+            found.add(spec.get("name"))
+    return found
+
+
+def _edges(values, column, dihedral, bins, given, show_scale):
+    """Bin edges (column units) for one column: the range given (shown unit), a full turn for a dihedral,
+    else the data's range."""
+    if given is not None:
+        low, high = (x / show_scale for x in given)
+        if not high > low:
+            raise CommandError(f"--range for column {column!r}: the upper end ({given[1]}) must exceed the "
+                               f"lower end ({given[0]})")
+        return np.linspace(low, high, bins + 1)
+    if dihedral:
+        return np.linspace(-math.pi, math.pi, bins + 1)
+    low, high = float(values.min()), float(values.max())
+    if not high > low:
+        raise CommandError(f"column {column!r} has the same value {low:g} in every used frame; give --range")
+    return np.linspace(low, high, bins + 1)
+
+
+def _cmd_reweight(args) -> int:
+    from . import analysis
+
+    outputs = _check_outputs(args.outputs or [], _TABLE_FORMATS + _FIGURE_FORMATS, "--output")
+    if len(args.along) > 2:
+        raise CommandError(f"--along takes one or two columns, got {len(args.along)}: "
+                           f"{', '.join(args.along)}")
+    d = len(args.along)
+    bins = args.bins or ([60] if d == 1 else [36, 36])
+    if len(bins) == 1:
+        bins = bins * d
+    if len(bins) != d or min(bins) < 2:
+        raise CommandError(f"--bins: give one number >= 2, or one per --along column ({d}), got {args.bins}")
+    ranges = args.range or []
+    if ranges and len(ranges) != d:
+        raise CommandError(f"--range: give it once per --along column ({d}), in order; got {len(ranges)}")
+    run = load_run(args.checkpoint)
+    log = read_log(args.log)
+    t, cvs, logged_bias, note = run_frames(run, log, args.columns, args.time_column)
+    # run_frames keeps a prefix of the (time-ordered) frames: the ones within the checkpoint's time.
+    values = np.column_stack([_log_column(log, c, "--along")[: t.size] for c in args.along])
+    units = [log.unit(c) for c in args.along]
+    show = _Display(args.along, units, args.angles)
+    bias = run.bias
+    progress = ProgressLine()
+    if args.method == "offset":
+        kwargs = {"frame_bias": logged_bias} if logged_bias is not None else {"frame_cvs": cvs}
+        weights = analysis.offset_weights(bias, t, progress=progress.counter("reweighting the frames"),
+                                          **kwargs)
+    else:
+        weights = analysis.final_bias_weights(bias, t, cvs, burn_in_fraction=args.burn_in)
+    used = weights.used
+    dihedrals = _dihedral_columns(log, run)
+    edges = [_edges(values[used, i], c, c in dihedrals, bins[i], ranges[i] if ranges else None, show.scale(i))
+             for i, c in enumerate(args.along)]
+    profile = analysis.free_energy_along(weights, values, edges, names=args.along)
+    print(f"free energy along {', '.join(args.along)} from {run.path} and {log.path}")
+    print(f"  {weights.summary()}")
+    if note:
+        print(f"  note: {note}")
+    no_plateau = int((~profile.plateau_found & np.isfinite(profile.free_energy)).sum())
+    if no_plateau:
+        print(f"  note: {no_plateau} bins had no blocking plateau; their errors are lower bounds")
+    if d == 1:
+        print(f"  {show.label(0):>14}{'F (kJ/mol)':>13}{'error':>10}{'frames':>9}")
+        for x, f, e, n in zip(profile.centers[0], profile.free_energy, profile.error, profile.counts,
+                              strict=True):
+            print(f"  {show.value(0, x):>14}{_fmt(f, 5):>13}{_fmt(e, 3):>10}{int(n):>9}")
+    else:
+        finite = np.isfinite(profile.free_energy)
+        print(f"  {finite.sum()} of {finite.size} bins reached; F up to {np.nanmax(profile.free_energy):.4g} "
+              f"kJ/mol, median error {np.nanmedian(profile.error[finite]):.3g} kJ/mol")
+    for path, fmt in outputs:
+        write_atomically(path, profile_bytes(profile, fmt, units=units, angles=args.angles))
+        print(f"wrote {path}")
+    return EXIT_OK
+
+
+# -------------------------------------------------------------------------------------------------- demo
+def _cmd_demo(args) -> int:
+    from .demo.run import DemoSettings, run_demo
+
+    settings = DemoSettings.from_options(mode=args.mode, quick=args.quick, length_ns=args.length,
+                                         platform=args.platform, seed=args.seed)
+    result = run_demo(args.out, settings, fresh=args.fresh)
+    return EXIT_OK if result.completed else EXIT_FAILED
+
+
+# ------------------------------------------------------------------------------------------------ parser
+_UNITS_NOTE = ("Units: energies in kJ/mol (and kBT where marked), times in ps, temperatures in K, CVs in "
+               "their own units (nm, rad); angles are shown and typed in degrees unless --angles rad.")
+
+
+def _fraction(text):
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1, got {text!r}") from None
+    if not 0 < x <= 1:
+        raise argparse.ArgumentTypeError(f"expected a number in (0, 1], got {text!r}")
+    return x
+
+
+def _positive(text):
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}") from None
+    if not (math.isfinite(x) and x > 0):
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+    return x
+
+
+def _count(text):
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
+    return n
+
+
+def _names(text):
+    names = [n.strip() for n in text.split(",")]
+    if not all(names):
+        raise argparse.ArgumentTypeError(f"expected comma-separated column names, got {text!r}")
+    return names
+
+
+def _add_angles(p):
+    p.add_argument("--angles", choices=("deg", "rad"), default="deg",
+                   help="show (and read --range values of) angle CVs in degrees or radians (default deg)")
+
+
+def _add_frames(p):
+    p.add_argument("--columns", type=_names, metavar="NAME[,NAME...]",
+                   help="the log columns holding the biased CVs, in the bias's order (default: the CV names "
+                        "stored in the checkpoint)")
+    p.add_argument("--time-column", default="time", metavar="NAME",
+                   help="the log column holding the simulated time in ps (default 'time')")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``gridbias`` command."""
+    from . import __version__
+
+    parser = _Parser(prog="gridbias", formatter_class=argparse.RawDescriptionHelpFormatter,
+                     description="Grid-stored metadynamics: run the demo, look at a run's checkpoint, export "
+                                 "its free-energy surface, reweight its CV log.",
+                     epilog="Exit codes: 0 success, 1 the work failed or was interrupted, 2 bad usage or bad "
+                            "input.\n" + _UNITS_NOTE)
+    parser.add_argument("--version", action="version", version=f"gridbias {__version__}")
+    parser.add_argument("--traceback", action="store_true",
+                        help="on an error, also print the Python traceback (for bug reports)")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    p = sub.add_parser(
+        "demo", help="well-tempered metadynamics of a dipeptide in vacuum, with a report",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Well-tempered metadynamics of the blocked alanine dipeptide (ACE-ALA-NME, amber14 "
+                    "force field, vacuum, 300 K) biased on its backbone dihedrals phi and psi, on the "
+                    "fastest OpenMM platform found. It shows its progress, checkpoints as it goes (press "
+                    "Ctrl-C, then run the same command again to continue) and ends with a folder holding "
+                    "the free-energy surface (npz, csv, png), convergence plots, the checkpoint, the CV log "
+                    "and a text report.",
+        epilog="Modes: '2d' biases phi and psi (about 5 minutes on 2 cores; --quick about 1 minute). "
+               "'reweight' biases phi only and recovers the free energy along psi by reweighting the CV "
+               "log, compared with the 2d run's surface when that run is in the same --out folder.\n"
+               + _UNITS_NOTE)
+    p.add_argument("--mode", choices=("2d", "reweight"), default="2d",
+                   help="'2d': bias phi and psi; 'reweight': bias phi only and reweight to psi (default 2d)")
+    p.add_argument("--quick", action="store_true", help="a shorter run (about a fifth of the length)")
+    p.add_argument("--out", default="gridbias-demo", metavar="DIR",
+                   help="results folder (default ./gridbias-demo); each mode writes its own subfolder")
+    p.add_argument("--length", type=_positive, metavar="NS",
+                   help="simulated time in ns, instead of the mode's default (e.g. 0.002 for a smoke test)")
+    p.add_argument("--platform", default="auto",
+                   choices=("auto", "Reference", "CPU", "CUDA", "OpenCL", "HIP"),
+                   help="OpenMM platform; 'auto' times the available ones briefly and takes the fastest")
+    p.add_argument("--seed", type=_count, default=2024, metavar="N",
+                   help="random seed for velocities and the thermostat (default 2024)")
+    p.add_argument("--fresh", action="store_true",
+                   help="discard this mode's earlier results in --out and start again")
+    p.set_defaults(handler=_cmd_demo)
+
+    p = sub.add_parser(
+        "inspect", help="summarise a checkpoint: grid, CVs, hills, time, basins, convergence verdict",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Summarise a checkpoint (.gbz, from the OpenMM adapter or GridBias.save): grid, CVs, "
+                    "hill count and height decay, simulated time, the basins of the final free-energy "
+                    "surface, their free-energy differences and the convergence verdict. With --log, "
+                    "transitions are counted along the logged CVs and the differences also come from "
+                    "reweighted frames, with block-analysis errors.",
+        epilog=_UNITS_NOTE)
+    p.add_argument("checkpoint", metavar="CHECKPOINT", help="the checkpoint file (.gbz)")
+    p.add_argument("--log", metavar="CVLOG", help="the run's CV log (.gbl)")
+    _add_frames(p)
+    _add_angles(p)
+    p.add_argument("--min-depth", type=_positive, default=2.0, metavar="KBT",
+                   help="a minimum counts as a basin if it is this many kBT below its lowest saddle "
+                        "(default 2)")
+    p.add_argument("--drift", type=_positive, default=0.5, metavar="KBT",
+                   help="largest change of the basin differences allowed over the window, kBT (default 0.5)")
+    p.add_argument("--window", type=_fraction, default=0.25, metavar="FRACTION",
+                   help="last part of the run the drift is measured over (default 0.25)")
+    p.add_argument("--transitions", type=_count, default=10, metavar="N",
+                   help="core-to-core transitions between basins needed (default 10)")
+    p.add_argument("--max-height", type=_fraction, default=0.05, metavar="FRACTION",
+                   help="well-tempered: recent hills must be at most this fraction of the initial height "
+                        "(default 0.05)")
+    p.add_argument("--points", type=_count, default=40, metavar="N",
+                   help="moments of the run at which the basin differences are computed (default 40)")
+    p.set_defaults(handler=_cmd_inspect)
+
+    p = sub.add_parser(
+        "export", help="write a checkpoint's free-energy surface as CSV, .npz, PNG, SVG or PDF",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Write the free-energy surface of a checkpoint (kJ/mol, minimum 0, on the bias grid's "
+                    "nodes) to one or more files; the extension chooses the format. CSV: one row per node, "
+                    "CV columns then free_energy[kJ/mol]. NPZ: free_energy (grid shape), axis0.. (node "
+                    "coordinates, CV units), names, units, periodic, kT, temperature, bias_factor, time_ps, "
+                    "n_hills. PNG/SVG/PDF: a filled-contour (2 CVs) or curve (1 CV) figure.",
+        epilog=_UNITS_NOTE)
+    p.add_argument("checkpoint", metavar="CHECKPOINT", help="the checkpoint file (.gbz)")
+    p.add_argument("outputs", nargs="+", metavar="OUTPUT",
+                   help="files to write: .csv, .npz, .png, .svg, .pdf")
+    when = p.add_mutually_exclusive_group()
+    when.add_argument("--time", type=float, metavar="PS",
+                      help="the surface as it was at this simulated time, ps (default: the end)")
+    when.add_argument("--hills", type=_count, metavar="N", help="the surface from the first N hills")
+    _add_angles(p)
+    p.set_defaults(handler=_cmd_export)
+
+    p = sub.add_parser(
+        "reweight", help="free energy along chosen CV-log columns, reweighted, with errors",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Reweight the frames of a CV log (.gbl) to the unbiased ensemble with the bias of its "
+                    "checkpoint and histogram them along one or two columns (biased CVs or any other logged "
+                    "quantity). Errors are one standard error from block analysis. Method 'offset' uses the "
+                    "time-independent offset c(t) (Tiwary & Parrinello 2015) with the bias each frame felt "
+                    "(every frame counts); 'final' weights the late frames by the final bias (well-tempered "
+                    "runs, after --burn-in).",
+        epilog=_UNITS_NOTE + " Free energies in kJ/mol, minimum 0; --range in the column's shown unit.")
+    p.add_argument("checkpoint", metavar="CHECKPOINT", help="the run's checkpoint (.gbz)")
+    p.add_argument("log", metavar="CVLOG", help="the run's CV log (.gbl)")
+    p.add_argument("--along", nargs="+", required=True, metavar="COLUMN",
+                   help="one or two log columns to compute the free energy along")
+    p.add_argument("--bins", type=_count, nargs="+", metavar="N",
+                   help="bins per column (default 60 for one column, 36 x 36 for two)")
+    p.add_argument("--range", type=float, nargs=2, action="append", metavar=("LOW", "HIGH"),
+                   help="histogram range of a column, once per column in --along order (default: -180..180 "
+                        "deg for a dihedral CV, else the data's range)")
+    p.add_argument("--method", choices=("offset", "final"), default="offset",
+                   help="'offset': c(t) weights (default); 'final': final-bias weights")
+    p.add_argument("--burn-in", type=float, default=0.5, metavar="FRACTION",
+                   help="'final' only: fraction of the run left out at its start (default 0.5)")
+    p.add_argument("--output", dest="outputs", nargs="+", metavar="FILE",
+                   help="files to write: .csv, .npz, .png, .svg, .pdf")
+    _add_frames(p)
+    _add_angles(p)
+    p.set_defaults(handler=_cmd_reweight)
+    return parser
+
+
+# -------------------------------------------------------------------------------------------------- main
+def _one_line(text) -> str:
+    return " ".join(str(text).split())
+
+
+def main(argv=None) -> int:
+    """Run the ``gridbias`` command; returns the exit code (0 ok, 1 failed, 2 bad usage or input)."""
+    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    show_traceback = "--traceback" in argv  # accepted anywhere on the line, not only before the command
+    argv = [a for a in argv if a != "--traceback"]
+    try:
+        args = parser.parse_args(argv)
+    except _UsageError as exc:
+        print(f"gridbias: error: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except SystemExit as exc:  # --help and --version
+        return int(exc.code or 0)
+    prefix = f"gridbias {args.command}: error:"
+    try:
+        return args.handler(args)
+    except Exception as exc:  # noqa: BLE001 - every failure becomes one line and an exit code
+        message, code = _classify(exc)
+        error = exc
+    except KeyboardInterrupt as exc:
+        message, code, error = "interrupted", EXIT_FAILED, exc
+    if show_traceback:
+        traceback.print_exception(type(error), error, error.__traceback__)
+    print(f"{prefix} {_one_line(message)}", file=sys.stderr)
+    return code
+
+
+def _classify(exc) -> tuple[str, int]:
+    """The one-line message and exit code for an exception raised by a command."""
+    from .errors import GridBiasError, LockError
+
+    if isinstance(exc, CommandError):
+        return str(exc), exc.code
+    if isinstance(exc, LockError):  # another run holds the file: not bad input, the work cannot proceed
+        return str(exc), EXIT_FAILED
+    if isinstance(exc, GridBiasError):  # bad input found by the library (files, columns, values)
+        return str(exc), EXIT_BAD_INPUT
+    if isinstance(exc, ImportError):
+        return str(exc), EXIT_FAILED
+    if isinstance(exc, OSError):
+        where = f" ({exc.filename})" if exc.filename else ""
+        return f"{exc.strerror or exc}{where}", EXIT_FAILED
+    return (f"unexpected {type(exc).__name__}: {exc} (this is a bug in gridbias; rerun with --traceback and "
+            "report it)"), EXIT_FAILED
