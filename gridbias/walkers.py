@@ -5,10 +5,11 @@ them deposit into one shared bias (Raiteri, Laio, Gervasio, Micheletti & Parrine
 3533, 2006)::
 
     from gridbias import walkers
-    bias = walkers.share(bias)      # the one extra line: same object type, now shared by all ranks
-    ...                             # everything else as for one walker (core loop or OpenMM adapter)
+    bias = walkers.share(bias)      # the one extra line: still a GridBias, now shared by all ranks
+    link = gbo.attach(system, cvs, bias)   # everything else as for one walker (OpenMM or a core loop)
 
-and launch with ``mpiexec -n 4 python run.py``. mpi4py is imported only when a bias is shared; without it
+and launch with ``mpiexec -n 4 python run.py``. Share the bias before handing it to anything else (the
+OpenMM link keeps the object it was given). mpi4py is imported only when a bias is shared; without it
 ``share`` raises ImportError naming ``pip install 'gridbias[mpi]'``.
 
 How the bias stays shared
@@ -36,6 +37,18 @@ Rules for the run
   of a job when one is killed, and :func:`share` installs a hook that turns an uncaught Python exception
   into ``MPI_Abort`` (otherwise the other walkers would wait in the next exchange forever). The last
   checkpoints are complete files (written atomically) and the set of walkers restarts from them.
+
+Checkpoints
+-----------
+- OpenMM: give each walker its own run checkpoint (``link.reporter(..., checkpoint=f"walker{rank}.gbz")``);
+  it holds the shared bias and that walker's MD state, written by every walker after the same exchange.
+  ``link.restore`` is then called by every walker together: it refuses files written by another number of
+  walkers, and files of different moments (a job killed in the few milliseconds between two walkers'
+  writes), saying so. ``bias.save(path)`` writes the shared bias alone (walker 0 writes), for analysis.
+- Core loop: ``bias.save(path)`` and ``SharedBias.load(path)`` (both collective; the file records the
+  number of walkers and exchanges) plus each walker's own dynamics state. Write the walkers' states first,
+  keeping each one's previous file, then ``bias.save`` as the commit: a set of files of one exchange then
+  always exists, even after a kill in between (tests/mpi/walkers_langevin.py does this).
 """
 
 from __future__ import annotations
@@ -65,7 +78,8 @@ _FINGERPRINT_WORDS = 5  # 40 bytes of SHA-256 fit in the 6 words after (operatio
 
 
 class WalkerSyncError(GridBiasError, RuntimeError):
-    """The walkers are out of step (different deposit cadence or operation) or hold different biases."""
+    """The walkers are out of step (in different collective calls, or restored from different moments) or
+    hold different biases. Raised on every walker at once."""
 
 
 def _mpi():
@@ -130,6 +144,17 @@ def share(bias, comm=None, *, abort_on_error=True) -> "SharedBias":
         ``comm`` not given and mpi4py missing (``pip install 'gridbias[mpi]'``).
     WalkerSyncError
         The walkers passed different biases.
+
+    Examples
+    --------
+    Run with ``mpiexec -n 2 python script.py``:
+
+    >>> import gridbias as gb
+    >>> from gridbias import walkers
+    >>> grid = gb.Grid([-1.0], [1.0], [60])
+    >>> bias = walkers.share(gb.GridBias(grid, sigma=[0.1], height=1.0, temperature=300.0))  # doctest: +SKIP
+    >>> bias.deposit([0.1 * bias.walker]), bias.n_hills  # doctest: +SKIP
+    (1.0, 2)
     """
     if not isinstance(bias, GridBias):
         raise ParameterError(f"bias must be a gridbias.GridBias, got {type(bias).__name__}")
@@ -174,6 +199,7 @@ class SharedBias(GridBias):
     """
 
     def __init__(self, *args, **kwargs):
+        """Same arguments as GridBias; the result is not attached to walkers (use :func:`share`)."""
         super().__init__(*args, **kwargs)
         self._comm = None
         self._rank = 0
