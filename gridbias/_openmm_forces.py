@@ -210,7 +210,7 @@ class EngineBias:
         hill_term, self.parameter_names = _hill_terms(bias, self.pending, prefix)
         wall_terms = _wall_terms(bias.walls)
         extra = ([hill_term] if hill_term else []) + wall_terms
-        periodic_box = system.usesPeriodicBoundaryConditions()
+        periodic_box = self.periodic_box = system.usesPeriodicBoundaryConditions()
         function = self.layout.make_function(openmm, bias.values)
         self.hill_force = None
         if route == "cvforce":

@@ -49,6 +49,7 @@ class BiasLink:
         self._n_folded = bias.n_hills
         self._n_pending = 0
         self._engine_cvs = [i for i, cv in enumerate(self.cvs) if not cv.geometric]
+        self._periodic_box = engine.periodic_box
         self._reporters = weakref.WeakSet()
 
     # -- properties -------------------------------------------------------------------------------
@@ -62,6 +63,7 @@ class BiasLink:
         return [cv.label(i) for i, cv in enumerate(self.cvs)]
 
     def describe_cvs(self) -> list:
+        """JSON-safe CV definitions (what a checkpoint compares on restore)."""
         return [cv.describe() for cv in self.cvs]
 
     # -- CVs --------------------------------------------------------------------------------------
@@ -73,7 +75,7 @@ class BiasLink:
             if state is None:
                 state = context.getState(getPositions=True)
             pos_n3 = np.asarray(state.getPositions(asNumpy=True)._value)
-            if self.system.usesPeriodicBoundaryConditions():
+            if self._periodic_box:
                 box = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value)
         s = np.empty(len(self.cvs))
         for i, cv in enumerate(self.cvs):
@@ -117,20 +119,28 @@ class BiasLink:
         self._n_pending = 0
 
     def deposit(self, simulation, s=None, *, time=None) -> float:
-        """Deposit one hill at the current CVs (or at ``s``) and update the engine. Returns the height."""
+        """Deposit one hill at the current CVs (or at ``s``) and update the engine. Returns the height.
+
+        Every hill the bias's ``deposit`` adds is mirrored (a shared bias of several walkers adds one per
+        walker): as a pending exact Gaussian while slots are free, else by folding all into the table.
+        """
         context = _context_of(simulation)
         self._bind(context)
         if s is None:
             s = self.cv_values(context)
         if time is None:
             time = float(context.getState().getTime()._value)
+        n_before = self._bias.n_hills
         h = self._bias.deposit(s, time=time)
-        if h > 0.0:
-            if self._n_pending < self._engine.pending:
-                self._engine.set_slot(context, self._n_pending, self._bias.history.centers[-1], h)
+        # Mirror every hill the call added: one normally, up to one per walker for a shared bias.
+        n_new = self._bias.n_hills - n_before
+        if n_new and self._n_pending + n_new <= self._engine.pending:
+            history = self._bias.history
+            for j in range(n_before, n_before + n_new):
+                self._engine.set_slot(context, self._n_pending, history.centers[j], history.heights[j])
                 self._n_pending += 1
-            else:
-                self._fold(context)
+        elif n_new:
+            self._fold(context)
         return h
 
     # -- checkpoints ------------------------------------------------------------------------------
@@ -200,7 +210,10 @@ class BiasLink:
         meta, arrays = read_checkpoint(path, kind=CHECKPOINT_KIND)
         try:
             self._check_compatible(meta, path)
-            bias = GridBias.from_state(meta["bias"], {k[5:]: v for k, v in arrays.items() if k.startswith("bias.")})
+            state = {k[5:]: v for k, v in arrays.items() if k.startswith("bias.")}
+            # A bias that restores itself (a SharedBias of walkers: collective, stays shared) does so.
+            restored = getattr(self._bias, "restored", None)
+            bias = restored(meta["bias"], state) if callable(restored) else GridBias.from_state(meta["bias"], state)
             folded = arrays["engine.folded_values"]
             n_folded = int(meta["engine"]["n_folded"])
         except KeyError as exc:
