@@ -242,3 +242,33 @@ def test_pending_hills_are_exact_gaussians_then_fold(route, rng):
                 exact += hgt * math.exp(-np.sum(d**2 / (2 * bias.sigma**2)))
             assert engine_energy(context) == pytest.approx(exact, abs=1e-6)
             assert abs(engine_energy(context) - core) < 1e-3
+
+
+class _TwoHillBias(gb.GridBias):
+    """A bias whose deposit adds two hills (as a shared bias of two walkers does in one exchange)."""
+
+    def deposit(self, s, *, time=None):
+        h = super().deposit(s, time=time)
+        self.add_hills([np.asarray(s) + [0.7, 0.2]], [0.5 * h], [time if time is not None else np.nan])
+        return h
+
+
+def test_every_hill_of_a_deposit_is_mirrored(rng):
+    """Two hills per deposit, 3 slots: deposit 1 fills 2 slots, deposit 2 does not fit and folds, deposit 3
+    fills 2 slots again; the engine follows the core (within the pending-hill spline error) throughout."""
+    cvs = [gbo.dihedral(0, 1, 2, 3), gbo.distance(0, 4)]
+    base = gbo.make_bias(cvs, lower=[-PI, 0.0], upper=[PI, 2.0], bins=[64, 64], sigma=[0.4, 0.15], height=1.0,
+                         temperature=300.0)
+    bias = _TwoHillBias(base.grid, base.sigma, 1.0, 300.0)
+    system = free_particles(7)
+    link = gbo.attach(system, cvs, bias, pending_hills=3)
+    context = context_for(system)
+    for expected_pending in (2, 0, 2):
+        pos, s = random_configuration(rng, cvs, bias)
+        context.setPositions(pos)
+        link.deposit(context, [s[0], min(s[1], 1.5)])
+        assert link._n_pending == expected_pending
+        probe, s = random_configuration(rng, cvs, bias)
+        context.setPositions(probe)
+        assert engine_energy(context) == pytest.approx(bias.evaluate(s)[0], abs=2e-3)
+    assert bias.n_hills == 6
