@@ -206,19 +206,13 @@ def test_an_exception_on_one_walker_stops_the_whole_job(tmp_path):
 
 
 # --------------------------------------------------------------------------------------- OpenMM walkers
-# These need two changes in gridbias/openmm.py (BiasLink.deposit must push every hill an exchange added, read
-# from bias.history, not only this walker's; BiasLink.restore must hand the restored state to the SharedBias
-# so the walkers stay shared). Until the adapter has them the tests fail, hence strict xfail: remove the
-# marker when the adapter is changed.
-ADAPTER_PENDING = pytest.mark.xfail(
-    strict=True,
-    reason="the OpenMM adapter does not yet push other walkers' hills nor keep a restored bias shared")
+# The adapter mirrors every hill an exchange adds (pending Gaussians or a fold) and, on restore, hands the
+# state to the SharedBias (collective), so the walkers stay shared.
 needs_openmm = pytest.mark.skipif(not HAVE_OPENMM, reason="needs openmm (pip install 'gridbias[openmm]')")
 
 
 @needs_openmm
 @pytest.mark.openmm
-@ADAPTER_PENDING
 def test_openmm_walkers_apply_the_shared_bias_exactly(tmp_path):
     # 500 steps at stride 50 = 10 exchanges of 2 hills with 4 pending slots: the engine holds exact Gaussians
     # for up to 2 exchanges, then folds. Engine - core is the spline error of the pending hills (< 1e-3
@@ -236,7 +230,6 @@ def test_openmm_walkers_apply_the_shared_bias_exactly(tmp_path):
 
 @needs_openmm
 @pytest.mark.openmm
-@ADAPTER_PENDING
 def test_openmm_walkers_restart_exactly_on_the_reference_platform(tmp_path):
     # OpenMM's checkpoints continue bit for bit on the Reference platform; with the shared bias restored from
     # each walker's run checkpoint, 475 + restore (new processes) + 475 steps equal 950 uninterrupted steps.
@@ -252,7 +245,6 @@ def test_openmm_walkers_restart_exactly_on_the_reference_platform(tmp_path):
 
 @needs_openmm
 @pytest.mark.openmm
-@ADAPTER_PENDING
 def test_walkers_example_runs_and_continues(tmp_path):
     example = HERE.parent / "examples" / "walkers_openmm.py"
     options = ["--stride", 50, "--checkpoint-every", 500, "--folder", tmp_path / "out"]
