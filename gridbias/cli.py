@@ -22,6 +22,7 @@ import io
 import math
 import os
 import sys
+import textwrap
 import time
 import traceback
 from dataclasses import dataclass, replace
@@ -51,6 +52,14 @@ class CommandError(Exception):
 
 class _UsageError(Exception):
     pass
+
+
+class _Formatter(argparse.HelpFormatter):
+    """Help text with descriptions and epilogs wrapped paragraph by paragraph (lines kept apart)."""
+
+    def _fill_text(self, text, width, indent):
+        return "\n".join(textwrap.fill(paragraph, width, initial_indent=indent, subsequent_indent=indent)
+                         for paragraph in text.split("\n"))
 
 
 class _Parser(argparse.ArgumentParser):
@@ -697,8 +706,9 @@ def _cmd_demo(args) -> int:
 
 
 # ------------------------------------------------------------------------------------------------ parser
-_UNITS_NOTE = ("Units: energies in kJ/mol (and kBT where marked), times in ps, temperatures in K, CVs in "
-               "their own units (nm, rad); angles are shown and typed in degrees unless --angles rad.")
+_UNITS = ("Units: energies in kJ/mol (and kBT where marked), times in ps, temperatures in K, CVs in their "
+          "own units (nm, rad)")
+_UNITS_NOTE = _UNITS + "; angles are shown and typed in degrees unless --angles rad."
 
 
 def _fraction(text):
@@ -755,7 +765,7 @@ def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``gridbias`` command."""
     from . import __version__
 
-    parser = _Parser(prog="gridbias", formatter_class=argparse.RawDescriptionHelpFormatter,
+    parser = _Parser(prog="gridbias", formatter_class=_Formatter,
                      description="Grid-stored metadynamics: run the demo, look at a run's checkpoint, export "
                                  "its free-energy surface, reweight its CV log.",
                      epilog="Exit codes: 0 success, 1 the work failed or was interrupted, 2 bad usage or bad "
@@ -767,7 +777,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "demo", help="well-tempered metadynamics of a dipeptide in vacuum, with a report",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+        formatter_class=_Formatter,
         description="Well-tempered metadynamics of the blocked alanine dipeptide (ACE-ALA-NME, amber14 "
                     "force field, vacuum, 300 K) biased on its backbone dihedrals phi and psi, on the "
                     "fastest OpenMM platform found. It shows its progress, checkpoints as it goes (press "
@@ -777,7 +787,9 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="Modes: '2d' biases phi and psi (about 5 minutes on 2 cores; --quick about 1 minute). "
                "'reweight' biases phi only and recovers the free energy along psi by reweighting the CV "
                "log, compared with the 2d run's surface when that run is in the same --out folder.\n"
-               + _UNITS_NOTE)
+               "The run: 300 K, Langevin, 2 fs steps; hills of 1.5 kJ/mol (initial height) and 20 deg width "
+               "every 0.5 ps, bias factor 6, a 96-bin grid per dihedral; 10 ns (--quick: 2 ns). "
+               "gridbias/demo/run.py says why.\n" + _UNITS + "; angles in degrees.")
     p.add_argument("--mode", choices=("2d", "reweight"), default="2d",
                    help="'2d': bias phi and psi; 'reweight': bias phi only and reweight to psi (default 2d)")
     p.add_argument("--quick", action="store_true", help="a shorter run (about a fifth of the length)")
@@ -796,7 +808,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "inspect", help="summarise a checkpoint: grid, CVs, hills, time, basins, convergence verdict",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+        formatter_class=_Formatter,
         description="Summarise a checkpoint (.gbz, from the OpenMM adapter or GridBias.save): grid, CVs, "
                     "hill count and height decay, simulated time, the basins of the final free-energy "
                     "surface, their free-energy differences and the convergence verdict. With --log, "
@@ -825,7 +837,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "export", help="write a checkpoint's free-energy surface as CSV, .npz, PNG, SVG or PDF",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+        formatter_class=_Formatter,
         description="Write the free-energy surface of a checkpoint (kJ/mol, minimum 0, on the bias grid's "
                     "nodes) to one or more files; the extension chooses the format. CSV: one row per node, "
                     "CV columns then free_energy[kJ/mol]. NPZ: free_energy (grid shape), axis0.. (node "
@@ -844,7 +856,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "reweight", help="free energy along chosen CV-log columns, reweighted, with errors",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+        formatter_class=_Formatter,
         description="Reweight the frames of a CV log (.gbl) to the unbiased ensemble with the bias of its "
                     "checkpoint and histogram them along one or two columns (biased CVs or any other logged "
                     "quantity). Errors are one standard error from block analysis. Method 'offset' uses the "

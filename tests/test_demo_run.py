@@ -275,13 +275,15 @@ def test_full_demo_basins_and_c7ax_c7eq_difference_against_published_values(full
 @pytest.mark.slow
 def test_full_reweight_demo_recovers_the_psi_profile_of_the_2d_run(full_runs):
     """Reweighting the frames of the phi-only run recovers F(psi) of the 2d run: after aligning the zeros,
-    the RMS difference is at most 0.5 kBT where the 2d profile is below 8 kBT (the tolerance of the
-    analytic reweighting checks of issue 4). F(psi) of the 2d run is its surface's marginal,
-    -kBT ln sum_phi exp(-F(phi, psi)/kBT), Boltzmann-averaged over the psi nodes of each bin."""
+    the RMS difference is at most 0.5 kBT over the bins below 8 kBT in the 2d profile (the tolerance and
+    range of the analytic reweighting checks of issue 4) that the phi-only run visited at least 20 times
+    (psi is not biased there: its barrier region gets a handful of visits in 10 ns). F(psi) of the 2d run
+    is its surface's marginal, -kBT ln sum_phi exp(-F(phi, psi)/kBT), Boltzmann-averaged over the psi
+    nodes of each bin."""
     out, _, result = full_runs
     assert result.completed
     with np.load(out / "phi-only" / "psi-reweighted.npz") as data:
-        profile, edges, kT = data["free_energy"], data["edges0"], float(data["kT"])
+        profile, counts, edges, kT = data["free_energy"], data["counts"], data["edges0"], float(data["kT"])
     with np.load(out / "phi-psi" / "surface.npz") as data:
         fes, psi = data["free_energy"], data["axis1"]
     marginal = -kT * np.log(np.exp(-fes / kT).sum(axis=0))
@@ -289,7 +291,7 @@ def test_full_reweight_demo_recovers_the_psi_profile_of_the_2d_run(full_runs):
     reference = np.array([-kT * np.log(np.mean(np.exp(-marginal[in_bin == j] / kT)))
                           for j in range(edges.size - 1)])
     reference -= reference.min()
-    keep = np.isfinite(profile) & (reference < 8 * kT)
+    keep = np.isfinite(profile) & (reference < 8 * kT) & (counts >= 20)
     assert keep.sum() >= 30
     weight = np.exp(-reference[keep] / kT)
     diff = profile[keep] - reference[keep]
