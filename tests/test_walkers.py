@@ -400,6 +400,18 @@ def test_restoring_walkers_from_states_of_different_moments_is_refused():
         assert "come from different moments (exchanges so far: walker 0: 1, walker 1: 2)" in str(exc)
 
 
+def test_restoring_a_run_of_another_size_is_refused():
+    # The OpenMM adapter hands each walker's checkpointed state to SharedBias.restored.
+    states = results(run_walkers(2, lambda comm: share(make_bias(), comm, abort_on_error=False).to_state()))
+
+    def walker(comm):
+        return share(make_bias(), comm, abort_on_error=False).restored(*states[0])
+
+    for _, exc in run_walkers(3, walker):
+        assert isinstance(exc, CheckpointError)
+        assert "the restored state was written by a run of 2 walkers; this run has 3" in str(exc)
+
+
 def test_restored_keeps_the_bias_shared():
     def walker(comm):
         bias = share(make_bias(), comm, abort_on_error=False)
