@@ -241,6 +241,9 @@ def test_openmm_walkers_restart_exactly_on_the_reference_platform(tmp_path):
         assert int(second["step"]) == int(full["step"]) == 950
         for key in ("positions", "velocities", "coefficients", "hill_centers", "hill_heights"):
             assert np.array_equal(full[key], second[key]), f"walker {r}: {key} differs after the restart"
+    # The same checkpoints with one walker: refused, saying why.
+    code, output = mpirun(["second", tmp_path, 475], n=1, script=OPENMM_SCRIPT, expect_success=False)
+    assert code != 0 and "was written by a run of 2 walkers; this run has 1" in output
 
 
 @needs_openmm
