@@ -166,8 +166,8 @@ def check_convergence(out, record_property):
 
 @needs_jit
 def test_two_walkers_converge_to_the_published_limit_in_fewer_steps_per_walker(tmp_path, record_property):
-    # Four seeds each; 6000 deposits for one walker, 3000 per walker for two (the same number of hills).
-    mpirun(["converge", tmp_path, "--seeds", 4, "--deposits", 6000, "--every", 100])
+    # Four seeds each; 4000 deposits for one walker, 2000 per walker for two (the same number of hills).
+    mpirun(["converge", tmp_path, "--seeds", 4, "--deposits", 4000, "--every", 100])
     ratio = check_convergence(tmp_path, record_property)
     assert ratio > 1.3  # linear scaling gives 2 (Raiteri et al. 2006); 1.8 here, 2.3 over 16 seeds (slow)
 
