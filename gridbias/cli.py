@@ -37,6 +37,10 @@ EXIT_OK = 0
 EXIT_FAILED = 1
 EXIT_BAD_INPUT = 2
 
+#: Bins of a reweighted profile with fewer frames than this are flagged: a handful of visits gives
+#: neither a value nor an error bar to trust (common practice, no source).
+FEW_FRAMES = 20
+
 _TABLE_FORMATS = ("csv", "npz")
 _FIGURE_FORMATS = ("png", "svg", "pdf")
 
@@ -677,14 +681,20 @@ def _cmd_reweight(args) -> int:
     print(f"  {weights.summary()}")
     if note:
         print(f"  note: {note}")
-    no_plateau = int((~profile.plateau_found & np.isfinite(profile.free_energy)).sum())
+    reached = np.isfinite(profile.free_energy)
+    no_plateau = int((~profile.plateau_found & reached).sum())
     if no_plateau:
         print(f"  note: {no_plateau} bins had no blocking plateau; their errors are lower bounds")
+    sparse = int((reached & (profile.counts < FEW_FRAMES)).sum())
+    if sparse:
+        print(f"  note: {sparse} bins hold fewer than {FEW_FRAMES} frames (marked *): their values and "
+              "errors rest on a few visits and are not reliable")
     if d == 1:
         print(f"  {show.label(0):>14}{'F (kJ/mol)':>13}{'error':>10}{'frames':>9}")
         for x, f, e, n in zip(profile.centers[0], profile.free_energy, profile.error, profile.counts,
                               strict=True):
-            print(f"  {show.value(0, x):>14}{_fmt(f, 5):>13}{_fmt(e, 3):>10}{int(n):>9}")
+            mark = " *" if np.isfinite(f) and n < FEW_FRAMES else ""
+            print(f"  {show.value(0, x):>14}{_fmt(f, 5):>13}{_fmt(e, 3):>10}{int(n):>9}{mark}")
     else:
         finite = np.isfinite(profile.free_energy)
         print(f"  {finite.sum()} of {finite.size} bins reached; F up to {np.nanmax(profile.free_energy):.4g} "
@@ -906,6 +916,9 @@ def main(argv=None) -> int:
     prefix = f"gridbias {args.command}: error:"
     try:
         return args.handler(args)
+    except BrokenPipeError:  # the reader went away (e.g. "| head"): stop quietly, as command-line tools do
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_FAILED
     except Exception as exc:  # noqa: BLE001 - every failure becomes one line and an exit code
         message, code = _classify(exc)
         error = exc

@@ -172,6 +172,9 @@ def test_reweight_one_column_matches_the_analysis_functions(capsys, run, tmp_pat
     np.testing.assert_allclose(table[:, 0], np.degrees(expected.centers[0]))
     np.testing.assert_allclose(table[:, 1], expected.free_energy, rtol=1e-9, equal_nan=True)
     assert "effective sample size" in out and out.count("\n") > 24
+    sparse = int((np.isfinite(expected.free_energy) & (expected.counts < 20)).sum())
+    assert sparse > 0 and sum(line.endswith(" *") for line in out.splitlines()) == sparse
+    assert f"note: {sparse} bins hold fewer than 20 frames (marked *)" in out
 
 
 def test_reweight_two_columns_and_final_bias_method(capsys, run, tmp_path):
