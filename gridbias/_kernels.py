@@ -374,6 +374,17 @@ def deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, center, sigma,
 
 
 @njit(cache=True, nogil=True)
+def hill_height(coef4, ndim, lower3, spacing3, bins3, periodic3, center, height, wt_inverse_energy):
+    """Height of a hill at ``center`` now: ``height * exp(-V(center) * wt_inverse_energy)``
+    (well-tempered), or ``height`` when wt_inverse_energy is 0 (standard)."""
+    if wt_inverse_energy > 0.0:
+        g = np.empty(ndim)
+        v = eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, center, g)
+        return height * np.exp(-v * wt_inverse_energy)
+    return height
+
+
+@njit(cache=True, nogil=True)
 def deposit_point(coef4, ndim, lower3, upper3, spacing3, bins3, periodic3, center, sigma,
                   height, cutoff, wt_inverse_energy):
     """One deposit step: the height rule plus the hill. Returns the height used, or -1.0 if outside.
@@ -386,11 +397,7 @@ def deposit_point(coef4, ndim, lower3, upper3, spacing3, bins3, periodic3, cente
             return -2.0
     if not inside_grid(ndim, lower3, upper3, periodic3, center):
         return -1.0
-    h = height
-    if wt_inverse_energy > 0.0:
-        g = np.empty(ndim)
-        v = eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, center, g)
-        h = height * np.exp(-v * wt_inverse_energy)
+    h = hill_height(coef4, ndim, lower3, spacing3, bins3, periodic3, center, height, wt_inverse_energy)
     deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, center, sigma, h, cutoff)
     return h
 

@@ -242,10 +242,7 @@ class GridBias:
         s = self._point(s)
         if not self._grid.contains(s):
             return 0.0
-        if self._bias_factor is None:
-            return self._height
-        v = _kernels.eval_point(*self.kernel_args(), s, np.empty(self.ndim))
-        return self._height * math.exp(-v * self._wt_inverse)
+        return _kernels.hill_height(*self.kernel_args(), s, self._height, self._wt_inverse)
 
     def deposit(self, s, *, time=None) -> float:
         """Deposit one hill at the CV point s (d,). Returns the height used, kJ/mol.
