@@ -19,7 +19,6 @@ pytest.importorskip("openmm")
 pytest.importorskip("matplotlib")
 
 from gridbias import analysis  # noqa: E402
-from gridbias.checkpoint import CheckpointLock  # noqa: E402
 from gridbias.cli import load_run, main, read_log, run_frames  # noqa: E402
 from gridbias.cvlog import read_cvlog  # noqa: E402
 from gridbias.demo.run import (  # noqa: E402
@@ -115,13 +114,18 @@ def test_fresh_starts_again_and_other_settings_are_refused(capsys, tmp_path):
     assert read_cvlog(tmp_path / "phi-psi" / "frames.gbl").n_records == 16
 
 
-def test_a_demo_already_running_in_the_folder_is_exit_code_1(capsys, tmp_path):
-    folder = tmp_path / "phi-psi"
-    folder.mkdir()
-    with CheckpointLock(folder / "run.gbz"):
-        code, _, err = _demo(capsys, tmp_path)
+def test_a_second_demo_in_the_same_folder_is_refused_and_touches_nothing(capsys, tmp_path):
+    first = _demo_process(tmp_path, 0.06)
+    frames = tmp_path / "phi-psi" / "frames.gbl"
+    deadline = time.monotonic() + 120
+    while _frames_written(frames) < 4 and first.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    code, _, err = _demo(capsys, tmp_path, "--fresh")
     assert code == 1
-    assert err.count("\n") == 1 and "in use by process" in err
+    assert err.count("\n") == 1 and "another gridbias demo is running in" in err
+    _, first_err = first.communicate(timeout=300)
+    assert first.returncode == 0, first_err
+    np.testing.assert_array_equal(read_cvlog(frames).column("step"), np.arange(250, 30_001, 250))
 
 
 def test_tiny_reweight_demo_compares_with_the_2d_run(tiny):

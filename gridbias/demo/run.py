@@ -47,7 +47,8 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from ..errors import CheckpointError, ParameterError
+from ..checkpoint import CheckpointLock
+from ..errors import CheckpointError, LockError, ParameterError
 
 __all__ = ["DemoSettings", "DemoResult", "run_demo", "CONFORMERS", "SUBFOLDERS", "FULL_LENGTH_NS",
            "QUICK_LENGTH_NS"]
@@ -699,7 +700,7 @@ def run_demo(out="gridbias-demo", settings: DemoSettings | None = None, *, fresh
     CheckpointError
         The folder's checkpoint is damaged or was written with other settings (use ``fresh``).
     LockError
-        Another demo is running in the same folder.
+        Another demo is running in the same folder (or another run holds its checkpoint).
     ImportError
         OpenMM (or, for the figures, matplotlib) is missing.
     """
@@ -712,15 +713,26 @@ def run_demo(out="gridbias-demo", settings: DemoSettings | None = None, *, fresh
     if os.path.exists(folder) and not os.path.isdir(folder):
         raise ParameterError(f"out: {folder!r} exists and is not a folder")
     os.makedirs(folder, exist_ok=True)
-    if fresh:
-        _remove_own_files(folder)
-    _say(stream, f"gridbias demo ({settings.mode}): well-tempered metadynamics of the alanine dipeptide in "
-                 f"vacuum, biased on {' and '.join(settings.biased)}, {settings.length_ns:g} ns; results in "
-                 f"{folder}")
-    completed, step, info = _simulate(folder, settings, stream, progress)
-    if not completed:
-        return DemoResult(folder, False, step, "", ())
-    report, files = _analyse(folder, settings, info, progress)
+    # One demo per folder: claim it before touching any file (a second run must not remove or cut the
+    # files of a live one).
+    claim = CheckpointLock(os.path.join(folder, "demo-run"))
+    try:
+        claim.acquire()
+    except LockError as exc:
+        raise LockError(f"another gridbias demo is running in {folder!r}; wait for it or stop it "
+                        f"({exc})") from None
+    try:
+        if fresh:
+            _remove_own_files(folder)
+        biased = " and ".join(settings.biased)
+        _say(stream, f"gridbias demo ({settings.mode}): well-tempered metadynamics of the alanine dipeptide "
+                     f"in vacuum, biased on {biased}, {settings.length_ns:g} ns; results in {folder}")
+        completed, step, info = _simulate(folder, settings, stream, progress)
+        if not completed:
+            return DemoResult(folder, False, step, "", ())
+        report, files = _analyse(folder, settings, info, progress)
+    finally:
+        claim.release()
     _say(stream, "")
     _say(stream, report)
     return DemoResult(folder, True, step, report, files)
