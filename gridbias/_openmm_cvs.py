@@ -60,28 +60,35 @@ def _label(name):
     return name
 
 
-def min_image(delta, box):
-    """Minimum-image difference vectors, OpenMM's rule for a reduced (triclinic) box.
-
-    delta : (..., 3) float, nm; box : (3, 3) float, nm (rows a, b, c) or None (no periodicity).
-    """
-    if box is None:
-        return delta
-    delta = np.array(delta, dtype=float)
-    for k in (2, 1, 0):
-        delta -= np.floor(delta[..., k:k + 1] / box[k, k] + 0.5) * box[k]
-    return delta
-
-
-def _dihedral(b1, b2, b3):
-    c12 = np.cross(b1, b2)
-    c23 = np.cross(b2, b3)
-    return math.atan2(np.linalg.norm(b2) * np.dot(b1, c23), np.dot(c12, c23))
+# The reporter reads CVs at every deposit: plain-float arithmetic on 3-vectors costs a few microseconds per
+# CV where small NumPy arrays cost tens.
+def _diff(p, q, box):
+    """q - p as a 3-tuple of floats, minimum image when box (3x3 nested tuples) is given."""
+    dx, dy, dz = q[0] - p[0], q[1] - p[1], q[2] - p[2]
+    if box is not None:
+        (ax, _, _), (bx, by, _), (cx, cy, cz) = box
+        n = math.floor(dz / cz + 0.5)
+        dx, dy, dz = dx - n * cx, dy - n * cy, dz - n * cz
+        n = math.floor(dy / by + 0.5)
+        dx, dy = dx - n * bx, dy - n * by
+        dx -= math.floor(dx / ax + 0.5) * ax
+    return dx, dy, dz
 
 
-def _angle(u, v):
-    cos = np.dot(u, v) / math.sqrt(np.dot(u, u) * np.dot(v, v))
-    return math.acos(min(1.0, max(-1.0, cos)))
+def _cross(u, v):
+    return u[1] * v[2] - u[2] * v[1], u[2] * v[0] - u[0] * v[2], u[0] * v[1] - u[1] * v[0]
+
+
+def _dot(u, v):
+    return u[0] * v[0] + u[1] * v[1] + u[2] * v[2]
+
+
+def _points_of(pos_n3, atoms):
+    return pos_n3[list(atoms)].tolist()
+
+
+def _box_tuple(box):
+    return None if box is None else tuple(tuple(float(x) for x in row) for row in box)
 
 
 @dataclass(frozen=True)
@@ -158,7 +165,9 @@ class Distance(CollectiveVariable):
         return f"distance({symbol(0)},{symbol(1)})"
 
     def value(self, pos_n3, box):
-        return float(np.linalg.norm(min_image(pos_n3[self.b] - pos_n3[self.a], box)))
+        p, q = _points_of(pos_n3, self.atoms)
+        d = _diff(p, q, _box_tuple(box))
+        return math.sqrt(_dot(d, d))
 
     def describe(self):
         return {"kind": "distance", "atoms": list(self.atoms)}
@@ -186,8 +195,11 @@ class Angle(CollectiveVariable):
         return f"angle({symbol(0)},{symbol(1)},{symbol(2)})"
 
     def value(self, pos_n3, box):
-        p = pos_n3[list(self.atoms)]
-        return _angle(min_image(p[0] - p[1], box), min_image(p[2] - p[1], box))
+        p0, p1, p2 = _points_of(pos_n3, self.atoms)
+        box = _box_tuple(box)
+        u, v = _diff(p1, p0, box), _diff(p1, p2, box)
+        cos = _dot(u, v) / math.sqrt(_dot(u, u) * _dot(v, v))
+        return math.acos(min(1.0, max(-1.0, cos)))
 
     def describe(self):
         return {"kind": "angle", "atoms": list(self.atoms)}
@@ -218,8 +230,11 @@ class Dihedral(CollectiveVariable):
         return f"dihedral({symbol(0)},{symbol(1)},{symbol(2)},{symbol(3)})"
 
     def value(self, pos_n3, box):
-        p = pos_n3[list(self.atoms)]
-        return _dihedral(min_image(p[1] - p[0], box), min_image(p[2] - p[1], box), min_image(p[3] - p[2], box))
+        p0, p1, p2, p3 = _points_of(pos_n3, self.atoms)
+        box = _box_tuple(box)
+        b1, b2, b3 = _diff(p0, p1, box), _diff(p1, p2, box), _diff(p2, p3, box)
+        c23 = _cross(b2, b3)
+        return math.atan2(math.sqrt(_dot(b2, b2)) * _dot(b1, c23), _dot(_cross(b1, b2), c23))
 
     def describe(self):
         return {"kind": "dihedral", "atoms": list(self.atoms)}
@@ -313,9 +328,10 @@ class CentroidDistance(CollectiveVariable):
         return CentroidDistance(self.group1, self.group2, w[0], w[1], self.name)
 
     def value(self, pos_n3, box):
-        c1 = np.average(pos_n3[list(self.group1)], axis=0, weights=self.weights1)
-        c2 = np.average(pos_n3[list(self.group2)], axis=0, weights=self.weights2)
-        return float(np.linalg.norm(min_image(c2 - c1, box)))
+        c1 = np.average(pos_n3[list(self.group1)], axis=0, weights=self.weights1).tolist()
+        c2 = np.average(pos_n3[list(self.group2)], axis=0, weights=self.weights2).tolist()
+        d = _diff(c1, c2, _box_tuple(box))
+        return math.sqrt(_dot(d, d))
 
     def describe(self):
         return {"kind": "centroid_distance", "group1": list(self.group1), "group2": list(self.group2),
@@ -364,9 +380,12 @@ class DistanceCombination(CollectiveVariable):
                         for (i, j), c in zip(self.pairs, self.coefficients))
 
     def value(self, pos_n3, box):
+        box = _box_tuple(box)
         total = 0.0
         for (i, j), c in zip(self.pairs, self.coefficients):
-            total += c * float(np.linalg.norm(min_image(pos_n3[j] - pos_n3[i], box)))
+            p, q = _points_of(pos_n3, (i, j))
+            d = _diff(p, q, box)
+            total += c * math.sqrt(_dot(d, d))
         return total
 
     def describe(self):
