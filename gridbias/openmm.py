@@ -24,10 +24,10 @@ expression. The newest hills are exact Gaussians in a second force whose heights
 parameters (``Context.setParameter``, microseconds); every ``pending_hills + 1`` deposits they are folded
 into the table with one push. Walls live in that second force too, which is never re-sent, so they cost
 nothing per push. The engine's bias equals ``bias.evaluate`` up to the difference between an exact
-Gaussian and its splined image on the grid for the hills not yet folded (at most ~1e-5 kJ/mol for hills
-of 1.2 kJ/mol and sigma = 7 grid spacings, measured; it scales with the hill height and falls quickly
-with sigma/spacing), and to rounding right after a fold (or to the padding error of a
-mixed-periodicity table, ~1e-7 of the surface's amplitude).
+Gaussian and its splined image on the grid for the hills not yet folded (measured with 8 pending hills:
+1e-4 of a hill's height at sigma = 4 grid spacings, 6e-4 at 3, 4e-3 at 2; ``pending_hills=0`` removes
+it), and to rounding right after a fold (or to the padding error of a mixed-periodicity table, ~1e-7 of
+the surface's amplitude).
 """
 
 from __future__ import annotations
@@ -251,9 +251,12 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=
         Hills applied as exact Gaussians before they are folded into the table (0: push the whole
         table at every deposit). See bench/README.md for the trade-off.
     route : {"compound", "cvforce"}, keyword-only
-        "compound": the CVs are computed inside one CustomCompoundBondForce (or CustomCentroidBondForce);
-        cheapest per step on CPU and GPU platforms. "cvforce": one CustomCVForce with the CVs as inner
-        forces; cheaper pushes, and required for ``from_force`` CVs (chosen automatically then).
+        "compound" (default): the CVs are computed inside one CustomCompoundBondForce (or
+        CustomCentroidBondForce); no extra Context, so the cheapest per step on the CPU platform and the
+        natural choice for GPUs. "cvforce": one CustomCVForce with the CVs as inner forces; on the
+        Reference platform (the fastest for systems of a few dozen atoms) it is cheaper both per step and
+        per push (measured: 2-6x, bench/README.md), but its inner Context costs ~0.1 ms per step on the
+        CPU platform. Required for ``from_force`` CVs (chosen automatically then).
     name : str, keyword-only
         Prefix of the forces' names and of the global parameters (attach two biases with two names).
 
