@@ -23,7 +23,8 @@ because re-sending a table (``updateParametersInContext``, milliseconds) recompi
 expression. The newest hills are exact Gaussians in a second force whose heights and centres are global
 parameters (``Context.setParameter``, microseconds); every ``pending_hills + 1`` deposits they are folded
 into the table with one push. Walls live in that second force too, which is never re-sent, so they cost
-nothing per push. The engine's bias equals ``bias.evaluate`` up to the difference between an exact
+nothing per push (on the CustomCVForce route both are terms of the one outer expression, whose recompile
+is cheap). The engine's bias equals ``bias.evaluate`` up to the difference between an exact
 Gaussian and its splined image on the grid for the hills not yet folded (measured with 8 pending hills:
 1e-4 of a hill's height at sigma = 4 grid spacings, 6e-4 at 3, 4e-3 at 2; ``pending_hills=0`` removes
 it), and to rounding right after a fold (or to the padding error of a mixed-periodicity table, ~1e-7 of
@@ -246,7 +247,9 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=
     bias : GridBias
         Its grid axes must match the CVs' periodicity (a dihedral needs a periodic axis spanning 2 pi).
     force_group : int, keyword-only
-        0..31 (default 31). The bias energy is ``getState(getEnergy=True, groups={force_group})``.
+        0..31 (default 31, the last group, which force fields leave free). The bias energy is
+        ``getState(getEnergy=True, groups={force_group})``. An integrator that integrates selected
+        groups only (multiple time steps) must include this one.
     pending_hills : int, keyword-only
         Hills applied as exact Gaussians before they are folded into the table (0: push the whole
         table at every deposit). See bench/README.md for the trade-off.
