@@ -7,7 +7,15 @@ OpenMM. Importing this package compiles nothing and imports neither OpenMM nor m
 from importlib.metadata import PackageNotFoundError, version
 
 from .bias import KB, GridBias
-from .errors import CheckpointError, CVLogError, GridBiasError, GridError, LockError, ParameterError
+from .errors import (
+    BlownUpError,
+    CheckpointError,
+    CVLogError,
+    GridBiasError,
+    GridError,
+    LockError,
+    ParameterError,
+)
 from .grid import Grid
 from .history import HillHistory
 from .walls import Wall
@@ -29,5 +37,6 @@ __all__ = [
     "CheckpointError",
     "LockError",
     "CVLogError",
+    "BlownUpError",
     "__version__",
 ]

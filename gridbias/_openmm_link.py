@@ -14,7 +14,7 @@ import numpy as np
 
 from ._openmm_forces import require_openmm, same_object
 from .bias import GridBias
-from .errors import CheckpointError, GridBiasError, ParameterError
+from .errors import BlownUpError, CheckpointError, ParameterError
 
 __all__ = ["BiasLink", "BiasReporter", "CHECKPOINT_KIND"]
 
@@ -29,7 +29,8 @@ _log = logging.getLogger("gridbias.openmm")
 class BiasLink:
     """A GridBias applied to one OpenMM System: reads CVs, deposits, pushes, saves and restores.
 
-    Made by :func:`attach`. ``link.bias`` is the live bias (after ``restore`` it is the restored one).
+    Made by :func:`attach`. ``link.bias`` is the bias given to ``attach``; ``restore`` loads the
+    checkpoint's hills into that same object, so every reference to it stays live.
 
     Guarantees: after ``restore`` the engine applies exactly the bias it applied when the checkpoint was
     written (table and pending hills), so a continuation on the same platform is bit-for-bit the
@@ -53,7 +54,7 @@ class BiasLink:
         self._reporters = weakref.WeakSet()
 
     # -- properties -------------------------------------------------------------------------------
-    bias = property(lambda self: self._bias, doc="The GridBias being applied (replaced by restore).")
+    bias = property(lambda self: self._bias, doc="The GridBias being applied (restore loads into it).")
     forces = property(lambda self: tuple(self._engine.forces), doc="The forces added to the System.")
     pending_hills = property(lambda self: self._engine.pending, doc="Hills held as Gaussians between pushes.")
     route = property(lambda self: self._engine.route, doc="'compound' or 'cvforce'.")
@@ -166,7 +167,7 @@ class BiasLink:
         positions = np.asarray(state.getPositions(asNumpy=True)._value, dtype=float)
         velocities = np.asarray(state.getVelocities(asNumpy=True)._value, dtype=float)
         if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
-            raise GridBiasError(f"positions or velocities are not finite at step {context.getStepCount()}: the "
+            raise BlownUpError(f"positions or velocities are not finite at step {context.getStepCount()}: the "
                                 f"simulation has blown up; {os.fspath(path)!r} was not overwritten")
         bias_meta, bias_arrays = self._bias.to_state()
         meta = {
@@ -218,7 +219,9 @@ class BiasLink:
             n_folded = int(meta["engine"]["n_folded"])
         except KeyError as exc:
             raise CheckpointError(f"{path}: checkpoint is incomplete (missing {exc})") from exc
-        self._check_bias(bias, path)
+        diff = self._bias.describe_difference(bias)
+        if diff:
+            raise CheckpointError(f"{path}: the bias {diff} (this run vs checkpoint)")
         if folded.shape != tuple(bias.grid.shape) or not 0 <= n_folded <= bias.n_hills:
             raise CheckpointError(f"{path}: engine table of shape {folded.shape} / n_folded={n_folded} does not "
                                   f"fit the bias (grid shape {bias.grid.shape}, {bias.n_hills} hills)")
@@ -238,7 +241,7 @@ class BiasLink:
             exact = False
         if not exact:
             self._load_portable(context, meta, arrays)
-        self._bias = bias
+        self._bias._adopt(bias)
         self._install(context, folded, n_folded)
         for rep in list(self._reporters):
             rep._restored(int(meta["step"]))
@@ -277,19 +280,6 @@ class BiasLink:
         for i, (a, b) in enumerate(zip(mine, theirs)):
             if a != b:
                 raise CheckpointError(f"{path}: CV {i} differs: checkpoint {b}, this link {a}")
-
-    def _check_bias(self, other, path):
-        mine = self._bias
-        diff = mine.grid.describe_difference(other.grid)
-        if diff:
-            raise CheckpointError(f"{path}: the grid differs (this bias vs checkpoint): {diff}")
-        for field in ("sigma", "height", "temperature", "bias_factor", "cutoff", "walls"):
-            a, b = getattr(mine, field), getattr(other, field)
-            same = np.array_equal(a, b) if field == "sigma" else a == b
-            if not same:
-                show = (lambda w: [x.to_dict() for x in w]) if field == "walls" else (
-                    lambda x: np.asarray(x).tolist() if x is not None else None)
-                raise CheckpointError(f"{path}: the bias {field} differs: this run {show(a)}, checkpoint {show(b)}")
 
     @staticmethod
     def _load_portable(context, meta, arrays):
@@ -361,7 +351,7 @@ class BiasReporter:
         s = link.cv_values(simulation)
         grid = link.bias.grid
         if not np.isfinite(s).all():
-            raise GridBiasError(f"the starting CV values are not finite: {s.tolist()}")
+            raise BlownUpError(f"the starting CV values are not finite: {s.tolist()}")
         if not grid.contains(s):
             warnings.warn(f"the starting CV values {s.tolist()} ({link.labels()}) are outside the grid "
                           f"({grid.lower.tolist()} .. {grid.upper.tolist()}): no hills are deposited there and "
@@ -411,7 +401,7 @@ class BiasReporter:
             if not np.isfinite(s).all():
                 where = (f"the last checkpoint is {self.checkpoint!r} at step {self.last_checkpoint_step}"
                          if self.last_checkpoint_step is not None else "no checkpoint was written by this run")
-                raise GridBiasError(f"CV values are not finite at step {step}: {s.tolist()} "
+                raise BlownUpError(f"CV values are not finite at step {step}: {s.tolist()} "
                                     f"({link.labels()}); the simulation has blown up. Stopping; {where}")
             t = float(state.getTime()._value)
             if log_due:

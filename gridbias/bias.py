@@ -442,6 +442,43 @@ class GridBias:
         bias._n_outside = int(meta["n_outside"])
         return bias
 
+    def describe_difference(self, other: "GridBias") -> str:
+        """One sentence naming the first parameter in which ``other`` differs ('' when all agree).
+
+        Compares the grid, sigma, height, temperature, bias_factor, cutoff and walls (not the hills).
+        """
+        diff = self._grid.describe_difference(other.grid)
+        if diff:
+            return f"grid differs: {diff}"
+        for field in ("sigma", "height", "temperature", "bias_factor", "cutoff", "walls"):
+            mine, theirs = getattr(self, field), getattr(other, field)
+            if field == "sigma":
+                if not np.array_equal(mine, theirs):
+                    return f"sigma differs: {mine.tolist()} vs {np.asarray(theirs).tolist()}"
+            elif mine != theirs:
+                if field == "walls":
+                    mine, theirs = [w.to_dict() for w in mine], [w.to_dict() for w in theirs]
+                return f"{field} differs: {mine} vs {theirs}"
+        return ""
+
+    def load_state(self, meta, arrays) -> None:
+        """Replace this bias's hills (values, history, counters) in place by a state from ``to_state()``.
+
+        The state must have been written by a bias with the same parameters; otherwise CheckpointError names
+        the first difference. Everything that holds this object (an OpenMM link, a driver) sees the new
+        state. Used by ``gridbias.openmm`` restores.
+        """
+        self._adopt(GridBias.from_state(meta, arrays))
+
+    def _adopt(self, other: "GridBias") -> None:
+        """Take over the hills of ``other`` (same parameters), in place."""
+        diff = self.describe_difference(other)
+        if diff:
+            raise CheckpointError(f"the state belongs to another bias: {diff} (this bias vs the state)")
+        self._coef[...] = other._coef
+        self._history = other._history
+        self._n_outside = other._n_outside
+
     def save(self, path) -> None:
         """Write the complete state to ``path`` atomically (see gridbias.checkpoint)."""
         from .checkpoint import write_checkpoint

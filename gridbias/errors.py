@@ -7,6 +7,7 @@ __all__ = [
     "CheckpointError",
     "LockError",
     "CVLogError",
+    "BlownUpError",
 ]
 
 
@@ -32,3 +33,7 @@ class LockError(GridBiasError, RuntimeError):
 
 class CVLogError(GridBiasError, ValueError):
     """A CV log file that is not ours, is damaged, or does not fit the request."""
+
+
+class BlownUpError(GridBiasError, RuntimeError):
+    """The simulation produced non-finite positions, velocities or CV values; nothing was deposited or saved."""

@@ -291,6 +291,12 @@ class SharedBias(GridBias):
                 "GridBias and call gridbias.walkers.share() on it")
         return shared
 
+    def _adopt(self, other):
+        """Take over the hills of ``other`` in place, with its exchange count when it is shared too."""
+        super()._adopt(other)
+        if isinstance(other, SharedBias):
+            self._exchanges = other._exchanges
+
     # -- properties -----------------------------------------------------------------------------------
     comm = property(lambda self: self._comm, doc="The MPI communicator of the walkers.")
     walker = property(lambda self: self._rank, doc="This walker's index (its rank in comm), 0-based.")

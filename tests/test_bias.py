@@ -317,3 +317,19 @@ def test_no_valid_input_produces_nan(points, height, gamma):
 
 def test_default_cutoff_truncates_below_one_millionth():
     assert math.exp(-0.5 * DEFAULT_CUTOFF**2) == pytest.approx(1e-6, rel=1e-12)
+
+
+def test_load_state_in_place_and_refusal(rng):
+    grid = gb.Grid([0.0, 0.0], [1.0, 1.0], [20, 20])
+    source = gb.GridBias(grid, sigma=[0.1, 0.1], height=1.0, temperature=300.0, bias_factor=5.0)
+    for _ in range(20):
+        source.deposit(rng.random(2))
+    target = gb.GridBias(grid, sigma=[0.1, 0.1], height=1.0, temperature=300.0, bias_factor=5.0)
+    same_object = target
+    target.load_state(*source.to_state())
+    assert target is same_object and target.n_hills == 20
+    np.testing.assert_array_equal(target.values, source.values)
+    other = gb.GridBias(grid, sigma=[0.1, 0.2], height=1.0, temperature=300.0, bias_factor=5.0)
+    with pytest.raises(gb.CheckpointError, match=r"sigma differs: \[0.1, 0.2\] vs \[0.1, 0.1\]"):
+        other.load_state(*source.to_state())
+    assert other.n_hills == 0

@@ -142,10 +142,10 @@ def test_nan_cvs_stop_the_run(tmp_path):
     bad = positions.copy()
     bad[2] = np.nan
     sim.context.setPositions(bad)
-    with pytest.raises(gb.GridBiasError, match=r"not finite at step 30.*run\.gbz' at step 20"):
+    with pytest.raises(gb.BlownUpError, match=r"not finite at step 30.*run\.gbz' at step 20"):
         sim.step(20)
     assert gb.checkpoint.read_checkpoint(tmp_path / "run.gbz")[0]["step"] == 20
-    with pytest.raises(gb.GridBiasError, match="not finite at step 30.*was not overwritten"):
+    with pytest.raises(gb.BlownUpError, match="not finite at step 30.*was not overwritten"):
         link.save(sim, tmp_path / "run.gbz")
     assert gb.checkpoint.read_checkpoint(tmp_path / "run.gbz")[0]["step"] == 20
 

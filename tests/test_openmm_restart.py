@@ -218,3 +218,18 @@ def test_kill_while_saving_always_restorable(tmp_path):
         steps_seen.add(meta["step"])
         assert link.bias.n_hills == meta["step"] // 5
     assert len(steps_seen) >= 6
+
+
+def test_restore_loads_into_the_users_own_bias_object(tmp_path):
+    """``link.restore`` fills the very GridBias the user passed to ``attach`` (no stale references)."""
+    link, sim = dipeptide_link()
+    sim.reporters.append(link.reporter(stride=20))
+    sim.step(100)
+    path = tmp_path / "run.gbz"
+    link.save(sim, path)
+    other, sim2 = dipeptide_link()
+    users_bias = other.bias
+    other.restore(sim2, path)
+    assert other.bias is users_bias
+    assert users_bias.n_hills == link.bias.n_hills == 5
+    np.testing.assert_array_equal(users_bias.values, link.bias.values)
