@@ -569,6 +569,11 @@ def _analyse(folder, settings, info, progress):
                                                    edges, kT)
         figure, ax = plots.new_figure()
         plots.plot_free_energy(shown_profile(profile, ("rad",)), ax=ax)
+        sparse = np.isfinite(profile.free_energy) & (profile.counts < COMPARE_MIN_FRAMES)
+        if sparse.any():
+            ax.plot(np.degrees(profile.centers[0][sparse]), profile.free_energy[sparse], linestyle="none",
+                    marker="o", markersize=6, markerfacecolor="white", markeredgecolor="#1d2b36",
+                    label=f"bins with fewer than {COMPARE_MIN_FRAMES} frames")
         if reference_psi is not None:
             shift, rmsd, worst, n = _compare_profiles(profile.free_energy, profile.counts, reference_psi, kT)
             ax.plot(np.degrees(profile.centers[0]), reference_psi + shift, color="#b5532b", linestyle="--",
