@@ -932,14 +932,14 @@ def main(argv=None) -> int:
 
 def _classify(exc) -> tuple[str, int]:
     """The one-line message and exit code for an exception raised by a command."""
-    from .errors import GridBiasError, LockError
+    from .errors import GridBiasError
 
     if isinstance(exc, CommandError):
         return str(exc), exc.code
-    if isinstance(exc, LockError):  # another run holds the file: not bad input, the work cannot proceed
-        return str(exc), EXIT_FAILED
-    if isinstance(exc, GridBiasError):  # bad input found by the library (files, columns, values)
-        return str(exc), EXIT_BAD_INPUT
+    if isinstance(exc, GridBiasError):
+        # The library's ValueError kinds are bad input (files, columns, values); the others (another run
+        # holds the checkpoint, the simulation blew up) are failures of the work itself.
+        return str(exc), EXIT_BAD_INPUT if isinstance(exc, ValueError) else EXIT_FAILED
     if isinstance(exc, ImportError):
         return str(exc), EXIT_FAILED
     if isinstance(exc, OSError):

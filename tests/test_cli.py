@@ -279,6 +279,19 @@ def test_unexpected_errors_are_one_line_unless_traceback_is_asked(capsys, run, m
     assert code == 1 and "Traceback" in err and err.strip().endswith("report it)")
 
 
+@pytest.mark.parametrize("error", [gb.LockError("checkpoint 'x.gbz' is in use by process 1"),
+                                   gb.BlownUpError("CV values are not finite at step 10")])
+def test_run_time_failures_of_the_library_are_exit_code_1(capsys, run, monkeypatch, error):
+    import gridbias.cli as cli
+
+    def fail(path):
+        raise error
+
+    monkeypatch.setattr(cli, "load_run", fail)
+    code, _, err = _run(capsys, "inspect", run["checkpoint"])
+    assert code == 1 and err == f"gridbias inspect: error: {error}\n"
+
+
 def test_write_failure_is_exit_code_1(capsys, run, tmp_path, monkeypatch):
     import gridbias.cli as cli
 
