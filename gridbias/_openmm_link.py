@@ -14,13 +14,19 @@ import numpy as np
 
 from ._openmm_forces import require_openmm, same_object
 from .bias import GridBias
-from .errors import BlownUpError, CheckpointError, ParameterError
+from .errors import BlownUpError, CheckpointError, CVLogError, ParameterError
 
-__all__ = ["BiasLink", "BiasReporter", "CHECKPOINT_KIND"]
+__all__ = ["BiasLink", "BiasReporter", "CHECKPOINT_KIND", "DEFAULT_MAX_CHECKPOINT_FAILURES"]
 
 #: The ``kind`` of a run checkpoint written by ``BiasLink.save`` (gridbias.checkpoint container).
 CHECKPOINT_KIND = "gridbias.openmm-run"
 _CHECKPOINT_VERSION = 1
+
+#: Checkpoints in a row that may fail to be written (disk full, I/O error) before the reporter stops the
+#: run. One or two failures are survived (a transient network file system error, space freed in time),
+#: while a disk that stays full stops the run after three checkpoint intervals of work that exist only in
+#: memory. A judgement call, not a measured optimum: set ``max_checkpoint_failures=`` to taste.
+DEFAULT_MAX_CHECKPOINT_FAILURES = 3
 
 _log = logging.getLogger("gridbias.openmm")
 
@@ -145,10 +151,11 @@ class BiasLink:
         return h
 
     # -- checkpoints ------------------------------------------------------------------------------
-    def reporter(self, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None):
+    def reporter(self, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
+                 max_checkpoint_failures=DEFAULT_MAX_CHECKPOINT_FAILURES):
         """A reporter that deposits every ``stride`` steps; see :class:`BiasReporter`."""
         rep = BiasReporter(self, stride, checkpoint=checkpoint, checkpoint_every=checkpoint_every, log=log,
-                           log_every=log_every)
+                           log_every=log_every, max_checkpoint_failures=max_checkpoint_failures)
         self._reporters.add(rep)
         return rep
 
@@ -306,9 +313,26 @@ class BiasReporter:
     until ``close()`` (or until it is garbage-collected).
 
     NaN CV values stop the run with an error naming the step and the last checkpoint written.
+
+    A checkpoint that cannot be written (disk full, quota, I/O error, also when flushing the CV log just
+    before it) does not stop the run at once. The file on disk stays the previous checkpoint (writes are
+    atomic), the bias in memory keeps every hill, an ERROR naming the path, the step and the cause is
+    logged (logger ``gridbias.openmm``; Python prints it to stderr even when logging is not configured)
+    and the reporter tries again at the next checkpoint step. After ``max_checkpoint_failures``
+    failures in a row it stops the run with CheckpointError, which says where the last good checkpoint
+    is; ``link.save(simulation, other_path)`` then still keeps the bias held in memory. A written
+    checkpoint resets the count.
+
+    Attributes
+    ----------
+    last_checkpoint_step : int or None
+        Step of the last checkpoint this reporter wrote.
+    checkpoint_failures : int
+        Checkpoints that failed in a row since the last one written (0 when all is well).
     """
 
-    def __init__(self, link, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None):
+    def __init__(self, link, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
+                 max_checkpoint_failures=DEFAULT_MAX_CHECKPOINT_FAILURES):
         self._link = link
         self.stride = _steps("stride", stride)
         if checkpoint is None and checkpoint_every is not None:
@@ -321,7 +345,14 @@ class BiasReporter:
             raise ParameterError("log_every needs log= (a file path)")
         self.log = None if log is None else os.fspath(log)
         self.log_every = None if log is None else _steps("log_every", self.stride if log_every is None else log_every)
+        limit = max_checkpoint_failures
+        if isinstance(limit, bool) or not isinstance(limit, (int, np.integer)) or limit < 1:
+            raise ParameterError("max_checkpoint_failures must be an integer >= 1 (1: stop at the first "
+                                 f"failed checkpoint), got {limit!r}")
+        self.max_checkpoint_failures = int(limit)
         self.last_checkpoint_step = None
+        self.checkpoint_failures = 0
+        self._failed_steps = []
         self._restored_step = None
         self._started = False
         self._writer = None
@@ -410,10 +441,38 @@ class BiasReporter:
             if deposit_due:
                 link.deposit(simulation, s, time=t)
         if self._due(step, self.checkpoint_every):
+            self._write_checkpoint(simulation, step)
+
+    def _write_checkpoint(self, simulation, step):
+        """Flush the CV log and write the checkpoint; failures are logged and retried (class docstring)."""
+        try:
             if self._writer is not None:
                 self._writer.flush()
-            link.save(simulation, self.checkpoint)
-            self.last_checkpoint_step = step
+            self._link.save(simulation, self.checkpoint)
+        except (CheckpointError, CVLogError) as exc:
+            self.checkpoint_failures += 1
+            self._failed_steps.append(step)
+            n = self.checkpoint_failures
+            if self.last_checkpoint_step is not None:
+                on_disk = f"the file on disk is still the checkpoint of step {self.last_checkpoint_step}"
+            else:
+                on_disk = "no checkpoint has been written by this run (an older file there is untouched)"
+            in_memory = f"the bias in memory keeps all {self._link.bias.n_hills} hills"
+            if n >= self.max_checkpoint_failures:
+                steps = ", ".join(map(str, self._failed_steps))
+                plural = "s" if n > 1 else ""
+                raise CheckpointError(
+                    f"checkpoint {self.checkpoint!r} could not be written {n} time{plural} in a row "
+                    f"(step{plural} {steps}); last cause: {exc}. Stopping the run at step {step}: {on_disk}, "
+                    f"and {in_memory}: catch gridbias.CheckpointError and call link.save(simulation, path) "
+                    "with a path that has room, to keep them") from exc
+            _log.error("could not write checkpoint %r at step %d (failure %d of at most %d in a row): %s. "
+                       "The run continues and tries again at step %d; %s, and %s", self.checkpoint, step, n,
+                       self.max_checkpoint_failures, exc, step + self.checkpoint_every, on_disk, in_memory)
+            return
+        self.checkpoint_failures = 0
+        self._failed_steps.clear()
+        self.last_checkpoint_step = step
 
     def close(self):
         """Release the checkpoint lock and close the CV log."""
