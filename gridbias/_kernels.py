@@ -269,33 +269,9 @@ def wall_point(cv, bound, k, sign, power, s, grad_out):
 
 
 @njit(cache=True, nogil=True)
-def evaluate_points(coef4, ndim, lower3, spacing3, bins3, periodic3,
-                    wall_cv, wall_bound, wall_k, wall_sign, wall_power,
-                    use_grid, use_walls, points, energy_out, grad_out):
-    """Batched bias at points (n, d): energy_out (n,), grad_out (n, d). Grid and/or walls."""
-    g = np.empty(ndim)
-    for p in range(points.shape[0]):
-        s = points[p]
-        e = 0.0
-        if use_grid:
-            e = eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, g)
-        else:
-            for a in range(ndim):
-                g[a] = 0.0
-        if use_walls:
-            e += wall_point(wall_cv, wall_bound, wall_k, wall_sign, wall_power, s, g)
-        energy_out[p] = e
-        for a in range(ndim):
-            grad_out[p, a] = g[a]
-
-
-@njit(cache=True, nogil=True)
-def evaluate_one(coef4, ndim, lower3, spacing3, bins3, periodic3,
-                 wall_cv, wall_bound, wall_k, wall_sign, wall_power, use_grid, use_walls, s, grad_out):
-    """Bias at one point s (d,) into grad_out (d,); returns the energy, or NaN if s is not finite."""
-    for a in range(ndim):
-        if not np.isfinite(s[a]):
-            return np.nan
+def _bias_at(coef4, ndim, lower3, spacing3, bins3, periodic3,
+             wall_cv, wall_bound, wall_k, wall_sign, wall_power, use_grid, use_walls, s, grad_out):
+    """Grid part and/or walls at s (d,); writes the gradient into grad_out (d,), returns the energy."""
     e = 0.0
     if use_grid:
         e = eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, grad_out)
@@ -305,6 +281,27 @@ def evaluate_one(coef4, ndim, lower3, spacing3, bins3, periodic3,
     if use_walls:
         e += wall_point(wall_cv, wall_bound, wall_k, wall_sign, wall_power, s, grad_out)
     return e
+
+
+@njit(cache=True, nogil=True)
+def evaluate_points(coef4, ndim, lower3, spacing3, bins3, periodic3,
+                    wall_cv, wall_bound, wall_k, wall_sign, wall_power,
+                    use_grid, use_walls, points, energy_out, grad_out):
+    """Batched bias at points (n, d): energy_out (n,), grad_out (n, d). Grid and/or walls."""
+    for p in range(points.shape[0]):
+        energy_out[p] = _bias_at(coef4, ndim, lower3, spacing3, bins3, periodic3, wall_cv, wall_bound, wall_k,
+                                 wall_sign, wall_power, use_grid, use_walls, points[p], grad_out[p])
+
+
+@njit(cache=True, nogil=True)
+def evaluate_one(coef4, ndim, lower3, spacing3, bins3, periodic3,
+                 wall_cv, wall_bound, wall_k, wall_sign, wall_power, use_grid, use_walls, s, grad_out):
+    """Bias at one point s (d,) into grad_out (d,); returns the energy, or NaN if s is not finite."""
+    for a in range(ndim):
+        if not np.isfinite(s[a]):
+            return np.nan
+    return _bias_at(coef4, ndim, lower3, spacing3, bins3, periodic3, wall_cv, wall_bound, wall_k, wall_sign,
+                    wall_power, use_grid, use_walls, s, grad_out)
 
 
 @njit(cache=True, nogil=True)
