@@ -224,8 +224,16 @@ class BiasLink:
             bias = restored(meta["bias"], state) if callable(restored) else GridBias.from_state(meta["bias"], state)
             folded = arrays["engine.folded_values"]
             n_folded = int(meta["engine"]["n_folded"])
+            saved_platform = meta["platform"]
+            int(meta["step"]), float(meta["time_ps"])  # used below; checked before anything changes
+            for name in ("md.checkpoint", "md.positions", "md.velocities", "md.box"):
+                arrays[name]
+        except CheckpointError:
+            raise
         except KeyError as exc:
             raise CheckpointError(f"{path}: checkpoint is incomplete (missing {exc})") from exc
+        except (TypeError, ValueError, AttributeError) as exc:
+            raise CheckpointError(f"{path}: checkpoint metadata is malformed ({type(exc).__name__}: {exc})") from exc
         diff = self._bias.describe_difference(bias)
         if diff:
             raise CheckpointError(f"{path}: the bias {diff} (this run vs checkpoint)")
@@ -233,7 +241,7 @@ class BiasLink:
             raise CheckpointError(f"{path}: engine table of shape {folded.shape} / n_folded={n_folded} does not "
                                   f"fit the bias (grid shape {bias.grid.shape}, {bias.n_hills} hills)")
         platform = context.getPlatform().getName()
-        if meta["platform"] == platform:
+        if saved_platform == platform:
             try:
                 context.loadCheckpoint(arrays["md.checkpoint"].tobytes())
                 exact = True

@@ -423,9 +423,10 @@ class GridBias:
             heights = np.asarray(arrays["hill_heights"])
             times = np.asarray(arrays["hill_times"])
             n = int(meta["n_hills"])
+            n_outside = int(meta["n_outside"])
         except CheckpointError:
             raise
-        except (KeyError, TypeError, ValueError) as exc:
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
             raise CheckpointError(f"bias state is incomplete or invalid: {exc}") from exc
         if coef.shape != bias._coef.shape or coef.dtype != np.float64:
             raise CheckpointError(f"coefficients have shape {coef.shape} ({coef.dtype}); the grid needs "
@@ -439,7 +440,7 @@ class GridBias:
                 f"times {times.shape}")
         bias._coef[...] = coef
         bias._history.extend(centers.astype(float), heights.astype(float), times.astype(float))
-        bias._n_outside = int(meta["n_outside"])
+        bias._n_outside = n_outside
         return bias
 
     def describe_difference(self, other: "GridBias") -> str:

@@ -549,17 +549,17 @@ CRAFTED_TYPES = {
 }
 
 
-@pytest.mark.xfail(strict=True, reason="restore does not check metadata types yet (reported)")
 @pytest.mark.parametrize("case", list(CRAFTED_TYPES))
 def test_checksum_valid_metadata_of_wrong_type(tmp_path, case):
-    """Known gap: metadata of the wrong type in a checksum-valid file escapes as KeyError, TypeError,
-    ValueError or AttributeError from restore instead of a CheckpointError. Remove the xfail mark once
-    BiasLink.restore (and GridBias.from_state for n_outside) check the types."""
+    """Metadata of the wrong type in a checksum-valid file is a CheckpointError, never a raw KeyError,
+    TypeError, ValueError or AttributeError, and nothing is changed before it is raised."""
     raw, _ = run_checkpoint_bytes()
     path = _rewritten(raw, tmp_path, CRAFTED_TYPES[case])
     link, sim = make_run()
+    before = snapshot(link, sim)
     with pytest.raises(gb.CheckpointError):
         link.restore(sim, path)
+    assert_unchanged(before, snapshot(link, sim))
 
 
 def test_run_log_with_a_partial_last_record_loses_only_that_record(tmp_path):
