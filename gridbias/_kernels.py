@@ -45,14 +45,15 @@ def spline_slopes(y, periodic, out):
         for i in range(1, n - 1):
             rhs[i] = 3.0 * (y[i + 1] - y[i - 1])
         rhs[n - 1] = 3.0 * (y[0] - y[n - 2])
+        diag[0] = 4.0 - gam
+        diag[n - 1] = 4.0 - 1.0 / gam
+        inv = _factor_unit_offdiag(diag)
+        _solve_unit_offdiag(inv, rhs, out)
         u = np.zeros(n)
         u[0] = gam
         u[n - 1] = 1.0
-        diag[0] = 4.0 - gam
-        diag[n - 1] = 4.0 - 1.0 / gam
         zz = np.empty(n)
-        _thomas_unit_offdiag(diag, rhs, out)
-        _thomas_unit_offdiag(diag, u, zz)
+        _solve_unit_offdiag(inv, u, zz)
         fact = (out[0] + out[n - 1] / gam) / (1.0 + zz[0] + zz[n - 1] / gam)
         for i in range(n):
             out[i] -= fact * zz[i]
@@ -63,22 +64,31 @@ def spline_slopes(y, periodic, out):
         for i in range(1, n - 1):
             rhs[i] = 3.0 * (y[i + 1] - y[i - 1])
         rhs[n - 1] = 3.0 * (y[n - 1] - y[n - 2])
-        _thomas_unit_offdiag(diag, rhs, out)
+        inv = _factor_unit_offdiag(diag)
+        _solve_unit_offdiag(inv, rhs, out)
 
 
 @njit(cache=True, nogil=True)
-def _thomas_unit_offdiag(diag, rhs, out):
-    """Solve a tridiagonal system with unit off-diagonals. diag, rhs, out: (n,)."""
+def _factor_unit_offdiag(diag):
+    """Forward-elimination factors of a tridiagonal matrix with unit off-diagonals: inv (n,), where
+    inv[i] = 1 / (diag[i] - inv[i-1]) is both the pivot's reciprocal and the modified super-diagonal."""
     n = diag.shape[0]
-    cp = np.empty(n)
-    cp[0] = 1.0 / diag[0]
-    out[0] = rhs[0] / diag[0]
+    inv = np.empty(n)
+    inv[0] = 1.0 / diag[0]
     for i in range(1, n):
-        inv = 1.0 / (diag[i] - cp[i - 1])
-        cp[i] = inv
-        out[i] = (rhs[i] - out[i - 1]) * inv
+        inv[i] = 1.0 / (diag[i] - inv[i - 1])
+    return inv
+
+
+@njit(cache=True, nogil=True)
+def _solve_unit_offdiag(inv, rhs, out):
+    """Solve with the factors of ``_factor_unit_offdiag`` (Thomas algorithm). rhs, out: (n,)."""
+    n = inv.shape[0]
+    out[0] = rhs[0] * inv[0]
+    for i in range(1, n):
+        out[i] = (rhs[i] - out[i - 1]) * inv[i]
     for i in range(n - 2, -1, -1):
-        out[i] -= cp[i] * out[i + 1]
+        out[i] -= inv[i] * out[i + 1]
 
 
 @njit(cache=True, nogil=True)
@@ -137,10 +147,14 @@ def _axis_factors(n, periodic, lower, spacing, center, sigma, cutoff, g_full, s_
     if periodic:
         reach = 0
         centre = int(np.floor(u))
+        half = n // 2
         for i in range(n):
             if abs(s_full[i]) > tol:
                 d = i - centre
-                d -= n * int(np.floor(d / n + 0.5))
+                if d > half:
+                    d -= n
+                elif d < -half:
+                    d += n
                 reach = max(reach, abs(d) + 1)
         lo = centre - reach
         cnt = min(2 * reach + 1, n)
@@ -314,6 +328,13 @@ def inside_grid(ndim, lower3, upper3, periodic3, s):
 
 
 @njit(cache=True, nogil=True)
+def _axpy(y, a, x):
+    """y += a * x for contiguous 1-D slices of equal length."""
+    for q in range(y.shape[0]):
+        y[q] += a * x[q]
+
+
+@njit(cache=True, nogil=True)
 def deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, center, sigma, height, cutoff):
     """Add one Gaussian hill of peak ``height`` at ``center`` (d,) with widths ``sigma`` (d,).
 
@@ -362,12 +383,10 @@ def deposit_hill(coef4, ndim, lower3, spacing3, bins3, periodic3, center, sigma,
                 if f == 0.0:
                     continue
                 base = ia * stride[ax_a] + ib * stride[ax_b] if last >= 1 else 0
-                fl = fac[last, ol]
                 off = base + j0
-                for q in range(first_piece):
-                    row[off + q] += f * fl[q]
-                for q in range(first_piece, lq):
-                    row[base + q - first_piece] += f * fl[q]
+                _axpy(row[off:off + first_piece], f, fac[last, ol, :first_piece])
+                if lq > first_piece:
+                    _axpy(row[base:base + lq - first_piece], f, fac[last, ol, first_piece:lq])
 
 
 @njit(cache=True, nogil=True)
