@@ -108,7 +108,8 @@ def fastest(func, repeats):
 # ------------------------------------------------------------------------------------------------- deposit
 def deposit_components(runs, rounds, block=200):
     """For each Run: fastest seconds per MD step, per push (+ the step after it, minus a plain step), per
-    Python-side deposit (CVs + core deposit) and per slot update (setParameter x (d + 1)). The runs are
+    Python-side deposit (CVs + core deposit) and per slot update (setParameter x (d + 1)), for tables of
+    any dimension. The runs are
     measured in interleaved rounds and the fastest round counts, so a load spike from another process
     (this machine is shared) cannot bias one design against another."""
     best = {k: [math.inf] * 4 for k in runs}
@@ -125,7 +126,8 @@ def deposit_components(runs, rounds, block=200):
             push = fastest(lambda: (link._engine.push_table(context, link.bias.values), integrator.step(1)), 1)
             probe = link.bias.copy()
             python = fastest(lambda: probe.deposit(link.cv_values(sim)), 1)
-            slot = fastest(lambda: link._engine.set_slot(context, 0, [0.0, 0.0], 0.0), 1) if link.pending_hills \
+            centre = [0.0] * link.bias.ndim
+            slot = fastest(lambda: link._engine.set_slot(context, 0, centre, 0.0), 1) if link.pending_hills \
                 else 0.0
             best[k] = [min(x, y) for x, y in zip(best[k], (step, push, python, slot))]
     for k in runs:

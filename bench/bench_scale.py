@@ -38,6 +38,7 @@ from _timing import markdown_table  # noqa: E402
 from bench_engine import (  # noqa: E402
     Run,
     backbone_torsions,
+    deposit_components,
     dipeptide_bias,
     fastest,
     interleaved,
@@ -86,32 +87,6 @@ def cost_per_deposit(push, python, slot, per_step_slots, k, stride):
     return python + (k * slot + push) / (k + 1) + per_step_slots * stride
 
 
-def components(runs, rounds, block=1000):
-    """Fastest seconds per MD step of each Run, and of one push (+ the next step - a plain step), one
-    Python-side deposit (CVs + core deposit) and one pending-hill update, over interleaved rounds.
-
-    As bench_engine.deposit_components, for tables of any dimension."""
-    best = {k: [math.inf] * 4 for k in runs}
-    for r in runs.values():
-        r.sim.step(50)
-    for _ in range(rounds):
-        for k, r in runs.items():
-            sim, link = r.sim, r.link
-            context, integrator = sim.context, sim.integrator
-            step = fastest(lambda: integrator.step(block), 1) / block
-            values = link.bias.values
-            push = fastest(lambda: (link._engine.push_table(context, values), integrator.step(1)), 1)
-            probe = link.bias.copy()
-            python = fastest(lambda: probe.deposit(link.cv_values(sim)), 1)
-            centre = [0.0] * link.bias.ndim
-            slot = fastest(lambda: link._engine.set_slot(context, 0, centre, 0.0), 1) if link.pending_hills \
-                else 0.0
-            best[k] = [min(x, y) for x, y in zip(best[k], (step, push, python, slot))]
-    for k in runs:
-        best[k][1] -= best[k][0]
-    return best
-
-
 def linear_fit(nodes, seconds):
     """Line push = fixed + per_node * nodes fitted to relative errors (every size counts alike); returns
     (fixed s, per-node s, largest relative deviation)."""
@@ -134,7 +109,7 @@ def section_push(quick, plat_name):
             for bins in sizes:
                 runs = {k: Run(top, pos, system, plat, cvs=cvs, bias=periodic_bias(cvs, bins), deposit=False,
                                route=route, pending_hills=k) for k in (0, PENDING)}
-                comp = components(runs, 3 if quick else 7)
+                comp = deposit_components(runs, 3 if quick else 7, block=1000)
                 # the same table and bias in both runs: two samples of the push and Python-side costs
                 measured[bins] = (min(comp[0][1], comp[PENDING][1]), min(comp[0][2], comp[PENDING][2]),
                                   comp[PENDING][3], comp[PENDING][0] - comp[0][0])
