@@ -721,34 +721,23 @@ _UNITS = ("Units: energies in kJ/mol (and kBT where marked), times in ps, temper
 _UNITS_NOTE = _UNITS + "; angles are shown and typed in degrees unless --angles rad."
 
 
-def _fraction(text):
-    try:
-        x = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1, got {text!r}") from None
-    if not 0 < x <= 1:
-        raise argparse.ArgumentTypeError(f"expected a number in (0, 1], got {text!r}")
-    return x
+def _option_type(convert, allowed, expected, malformed):
+    """An argparse type: ``convert(text)`` must succeed (else "expected <malformed>") and satisfy
+    ``allowed`` (else "expected <expected>"); both messages quote the text given."""
+    def parse(text):
+        try:
+            x = convert(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected {malformed}, got {text!r}") from None
+        if not allowed(x):
+            raise argparse.ArgumentTypeError(f"expected {expected}, got {text!r}")
+        return x
+    return parse
 
 
-def _positive(text):
-    try:
-        x = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}") from None
-    if not (math.isfinite(x) and x > 0):
-        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
-    return x
-
-
-def _count(text):
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
-    return n
+_fraction = _option_type(float, lambda x: 0 < x <= 1, "a number in (0, 1]", "a number between 0 and 1")
+_positive = _option_type(float, lambda x: math.isfinite(x) and x > 0, "a positive number", "a positive number")
+_count = _option_type(int, lambda n: n >= 1, "a whole number >= 1", "a whole number")
 
 
 def _names(text):
