@@ -13,7 +13,6 @@ Comparison conventions used throughout:
   that minimises the RMSE, so the RMSE measures shape only.
 """
 
-import warnings
 
 import numba
 import numpy as np
