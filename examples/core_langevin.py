@@ -1,4 +1,8 @@
-"""Drive the gridbias core from your own integrator: a particle in a tilted double well.
+"""
+Drive the core from your own integrator
+=======================================
+
+Drive the gridbias core from your own integrator: a particle in a tilted double well.
 
 The scenario is made up for the example: one coordinate x (nm) in U(x) = h (x^2 - 1)^2 + e x, integrated with
 a hand-written Langevin (BAOAB) step in plain NumPy. The core needs only two calls: evaluate() for the bias

@@ -1,4 +1,8 @@
-"""A plain OpenMM script: the blocked alanine dipeptide in vacuum, Langevin dynamics at 300 K.
+"""
+A plain OpenMM script (no bias)
+===============================
+
+A plain OpenMM script: the blocked alanine dipeptide in vacuum, Langevin dynamics at 300 K.
 
 examples/plain_md_with_bias.py is this same script plus the few lines that add a well-tempered bias on
 the backbone torsions phi and psi (compare them with `diff`).

@@ -1,4 +1,8 @@
-"""examples/plain_md.py plus the few lines that add a well-tempered bias on the backbone torsions phi and psi.
+"""
+The same script with the bias added
+===================================
+
+examples/plain_md.py plus the few lines that add a well-tempered bias on the backbone torsions phi and psi.
 
 `diff examples/plain_md.py examples/plain_md_with_bias.py` shows them: build the CVs and the bias, attach
 it to the System before the Simulation is made, append the reporter (a hill every 500 steps, a checkpoint

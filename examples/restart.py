@@ -1,4 +1,8 @@
-"""A run that survives crashes: start it, kill it at any moment, start it again, and it continues.
+"""
+A run that survives crashes and queue limits
+============================================
+
+A run that survives crashes: start it, kill it at any moment, start it again, and it continues.
 
 The bias checkpoint holds everything needed to continue (the bias, the engine's own checkpoint, a
 portable copy of positions, velocities, box, step and time), and is replaced atomically, so a kill never

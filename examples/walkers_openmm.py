@@ -1,4 +1,8 @@
-"""Several walkers, one bias: the dipeptide's (phi, psi) surface from walkers that share their hills over MPI.
+"""
+Several walkers sharing one bias over MPI
+=========================================
+
+Several walkers, one bias: the dipeptide's (phi, psi) surface from walkers that share their hills over MPI.
 
 Every walker is one MPI process running its own OpenMM Simulation, from its own starting conformation and
 with its own random seed; all of them deposit into one well-tempered bias. Compared with
