@@ -24,6 +24,10 @@ _INK = "#1d2b36"  # lines and text: a dark slate
 _ACCENT = "#b5532b"  # thresholds and plateau marks: burnt orange (dark enough to read in greyscale)
 _SERIES = ("#1d2b36", "#b5532b", "#4f7f6f", "#7a5c9c", "#8a8a3c")
 _KT_LABEL = r"$k_\mathrm{B}T$"
+_NO_DATA = "#d9d9d9"  # bins without frames: light grey, hatched
+
+#: Bins of a 1-D profile with fewer frames than this are marked as unreliable (common practice).
+DEFAULT_MIN_FRAMES = 20
 
 
 def _figure_class():
@@ -138,6 +142,17 @@ def _surface_data(result):
                          f"got {type(result).__name__}")
 
 
+def _sparse_bins(result, min_frames) -> np.ndarray:
+    """Bins of a Profile with fewer than ``min_frames`` frames (none for a Surface)."""
+    from .analysis import Profile
+
+    if not isinstance(result, Profile):
+        return np.zeros(np.shape(result.free_energy), dtype=bool)
+    if isinstance(min_frames, bool) or not isinstance(min_frames, (int, np.integer)) or min_frames < 0:
+        raise ParameterError(f"min_frames must be an integer >= 0, got {min_frames!r}")
+    return np.isfinite(result.free_energy) & (np.asarray(result.counts) < min_frames)
+
+
 def _secondary_energy_axis(axis, kT, energy_unit, which):
     """Add an axis in the other energy unit: kBT beside kJ/mol, or kJ/mol beside kBT."""
     if energy_unit == "kJ/mol":
@@ -203,7 +218,8 @@ def _mark_basins(ax, basins, scales, ndim, curve=None, shown=None):
 
 
 def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, angle_unit: str = "rad",
-                     energy_unit: str = "kJ/mol", max_free_energy: float | None = None, level_step=None):
+                     energy_unit: str = "kJ/mol", max_free_energy: float | None = None, level_step=None,
+                     min_frames: int = DEFAULT_MIN_FRAMES):
     """Plot a free-energy profile (1-D curve with error band) or surface (2-D filled contours).
 
     Parameters
@@ -227,6 +243,9 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
         Highest level shown, in ``energy_unit``; default the top of the data, at most 12 kBT (2-D).
     level_step : float, keyword-only, optional
         Spacing of the 2-D contour levels in ``energy_unit``; default 1 kBT.
+    min_frames : int, keyword-only
+        1-D Profile: bins with fewer frames are drawn as open circles off the curve, and the energy axis is
+        scaled to the other bins (a bin of a few frames can sit far above the rest).
 
     Returns
     -------
@@ -249,16 +268,27 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
     if ndim == 1:
         x = np.asarray(coords[0]) * scales[0]
         y = fes * factor
+        sparse = _sparse_bins(result, min_frames)
+        solid = np.where(sparse, np.nan, y)
         if error is not None:
-            ax.fill_between(x, y - error * factor, y + error * factor, color=_SERIES[2], alpha=0.3,
+            band = np.where(sparse, np.nan, error * factor)
+            ax.fill_between(x, solid - band, solid + band, color=_SERIES[2], alpha=0.3,
                             linewidth=0, label="± 1 standard error")
-        ax.plot(x, y, color=_INK, linewidth=1.8, label="free energy")
+        ax.plot(x, solid, color=_INK, linewidth=1.8, label="free energy")
+        if sparse.any():
+            ax.plot(x[sparse], y[sparse], linestyle="none", marker="o", markersize=4, markerfacecolor="none",
+                    markeredgecolor=_INK, alpha=0.6, label=f"bins with fewer than {min_frames} frames")
         ax.set_xlabel(labels[0])
         ax.set_ylabel(f"free energy ({unit})")
         if max_free_energy is not None:
             ax.set_ylim(top=max_free_energy)
+        elif sparse.any() and np.isfinite(solid).any():
+            # a few frames in a bin give a point far above the rest: scale the axis to the sound bins
+            low, high = np.nanmin(solid), np.nanmax(solid + (0 if error is None else np.nan_to_num(band)))
+            margin = 0.08 * max(high - low, kT * factor)
+            ax.set_ylim(low - margin, high + margin)
         _secondary_energy_axis(ax, kT, energy_unit, "y")
-        if error is not None:
+        if error is not None or sparse.any():
             ax.legend(frameon=False, loc="upper center")
         if basins is not None:
             _mark_basins(ax, basins, scales, 1, (np.asarray(coords[0]), y))
@@ -276,6 +306,14 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
     if levels.size < 2:
         levels = np.array([0.0, top])
     masked = np.ma.masked_invalid(data.T)
+    if masked.mask.any():  # bins no frame reached: hatched grey with a key, never plain white
+        from matplotlib.patches import Patch
+
+        ax.set_facecolor(_NO_DATA)
+        ax.patch.set_hatch("////")
+        ax.patch.set_edgecolor("white")
+        ax.legend(handles=[Patch(facecolor=_NO_DATA, edgecolor="white", hatch="////", label="no frames")],
+                  loc="upper right", framealpha=0.9)
     filled = ax.contourf(x, y, masked, levels=levels, cmap=COLOUR_MAP, extend="max")
     ax.contour(x, y, masked, levels=levels, colors=_INK, linewidths=0.35, alpha=0.6)
     colour_bar = figure.colorbar(filled, ax=ax)
@@ -313,20 +351,24 @@ def plot_basin_differences(differences, *, ax=None, energy_unit: str = "kJ/mol",
     if not series or not all(isinstance(s, BasinDifferences) for s in series):
         raise ParameterError("differences must be BasinDifferences or a non-empty sequence of them")
     figure, ax = _figure_and_axes(ax)
+    # One colour per difference, one marker and line style per estimator: the two estimates of one
+    # difference read as a pair.
     markers = ("o", "s", "^", "D", "v")
-    colour = 0
+    styles = ("-", "--", ":", "-.")
+    colours = {}
     for n, result in enumerate(series):
         factor, unit = _energy_scale(energy_unit, result.kT)
         ref = result.names[result.reference]
         for b, name in enumerate(result.names):
             if b == result.reference:
                 continue
+            label = f"{name} − {ref}"
+            colour = colours.setdefault(label, _SERIES[len(colours) % len(_SERIES)])
             y = result.differences[:, b] * factor
             err = None if result.errors is None else result.errors[:, b] * factor
             ax.errorbar(result.times, y, yerr=err, marker=markers[n % len(markers)], markersize=4,
-                        linewidth=1.2, capsize=2, color=_SERIES[colour % len(_SERIES)],
-                        label=f"{name} − {ref} ({result.source})")
-            colour += 1
+                        linewidth=1.2, linestyle=styles[n % len(styles)], capsize=2, color=colour,
+                        markerfacecolor=colour if n == 0 else "white", label=f"{label} ({result.source})")
     ax.axhline(0.0, color=_INK, linewidth=0.6, alpha=0.4)
     if window_fraction is not None:
         times = series[0].times
@@ -424,9 +466,12 @@ def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None =
             ax.axhline(max_fraction * initial_height, color=_ACCENT, linewidth=1.0,
                        label=f"{100 * max_fraction:g}% of the initial height")
     ax.set_yscale("log")
+    if initial_height is not None and initial_height > 0:
+        ax.set_ylim(top=2.0 * max(initial_height, h[positive].max(initial=initial_height)))
     ax.set_xlabel("simulated time (ps)")
     ax.set_ylabel("hill height (kJ/mol)")
-    ax.legend(frameon=False)
+    # heights fall from the top left: the lower left is the one corner the data leaves free
+    ax.legend(frameon=False, loc="lower left")
     return figure
 
 
