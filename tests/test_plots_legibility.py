@@ -30,8 +30,9 @@ def differences(source, values):
 def test_both_estimates_of_one_difference_share_a_colour():
     figure = plots.plot_basin_differences([differences("bias", [3.0, 2.0, 2.5]),
                                            differences("reweighted frames", [2.8, 2.1, 2.4])])
-    lines = [line for line in figure.axes[0].get_lines() if line.get_label().startswith("B − A")]
-    assert len(lines) == 2
+    pairs = [c for c in figure.axes[0].containers if c.get_label().startswith("B − A")]
+    assert len(pairs) == 2
+    lines = [c.lines[0] for c in pairs]
     assert lines[0].get_color() == lines[1].get_color()
     assert lines[0].get_linestyle() != lines[1].get_linestyle()
 

@@ -40,5 +40,6 @@ def test_docstring_examples_run(name, tmp_path, monkeypatch):
     except ImportError as exc:
         pytest.skip(f"{name} needs an optional dependency: {exc}")
     monkeypatch.chdir(tmp_path)
-    result = doctest.testmod(module, optionflags=doctest.ELLIPSIS | doctest.NORMALIZE_WHITESPACE, verbose=False)
+    flags = doctest.ELLIPSIS | doctest.NORMALIZE_WHITESPACE
+    result = doctest.testmod(module, optionflags=flags, verbose=False)
     assert result.failed == 0, f"{result.failed} of {result.attempted} docstring examples of {name} failed"
