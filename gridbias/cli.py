@@ -221,6 +221,10 @@ def _cmd_export(args) -> int:
         raise CommandError(f"checkpoint {run.path!r} holds no hills yet: its free-energy surface is flat "
                            "zero")
     if args.time is not None:
+        end = run.time if np.isfinite(run.time) else float(bias.history.times[-1])
+        if np.isfinite(end) and args.time > end:
+            raise CommandError(f"--time {args.time:g} ps is after the end of the run ({end:g} ps in "
+                               f"{run.path!r}): give a time up to {end:g} ps")
         surface = analysis.surface_at(bias, time=args.time)
         if surface.n_hills == 0:
             first = float(bias.history.times[0])

@@ -19,8 +19,8 @@ import numpy as np
 
 from .errors import OutputError, ParameterError
 
-__all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "CVDisplay", "surface_bytes", "profile_bytes", "shown_profile",
-           "figure_bytes", "require_plots", "write_file"]
+__all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "CVDisplay", "surface_bytes", "surface_figure", "profile_bytes",
+           "shown_profile", "figure_bytes", "require_plots", "write_file"]
 
 #: File types (extensions) of tables and of figures.
 TABLE_FORMATS = ("csv", "npz")
@@ -99,9 +99,15 @@ def require_plots():
     return plots
 
 
-def _plot_names(names, units, periodic):
+def _plot_names(names, units):
     """Axis names for gridbias.plots: angles get their unit from the plot; other axes carry theirs."""
-    return tuple(f"{n} ({u})" if u and not p else n for n, u, p in zip(names, units, periodic, strict=True))
+    return tuple(f"{n} ({u})" if u and u != "rad" else n for n, u in zip(names, units, strict=True))
+
+
+def _moment(surface) -> str:
+    """'t = 1200 ps, 2,400 hills' (the time only where the hills carry one)."""
+    hills = f"{surface.n_hills:,} hills"
+    return f"t = {surface.time:g} ps, {hills}" if np.isfinite(surface.time) else hills
 
 
 def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) -> bytes:
@@ -111,7 +117,7 @@ def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) 
     NPZ: ``free_energy`` (grid shape, kJ/mol), ``axis0..`` node coordinates in CV units, ``names``,
     ``units``, ``periodic``, ``lower``, ``upper``, ``kT``, ``bias_factor`` (NaN: standard), ``time_ps``,
     ``n_hills``. Figures (png, svg, pdf): filled contours (2 CVs) or a curve (1 CV) by gridbias.plots,
-    with ``basins`` marked if given.
+    with ``basins`` marked if given, angles in ``angle_unit`` and a title naming the time and hill count.
     """
     grid = surface.grid
     show = CVDisplay(names, units, angle_unit)
@@ -130,10 +136,18 @@ def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) 
                       upper=np.asarray(grid.upper), kT=np.float64(surface.kT), bias_factor=np.float64(gamma),
                       time_ps=np.float64(surface.time), n_hills=np.int64(surface.n_hills))
         return _npz_bytes(arrays)
+    return figure_bytes(surface_figure(surface, names=names, units=units, angle_unit=angle_unit,
+                                       basins=basins), fmt)
+
+
+def surface_figure(surface, *, names, units, angle_unit="rad", basins=None):
+    """The figure ``surface_bytes`` writes: every angle (periodic or not) in ``angle_unit``, as in the
+    tables, and a title naming the moment shown (time and hill count)."""
     plots = require_plots()
-    figure = plots.plot_free_energy(surface, basins=basins, names=_plot_names(names, units, grid.periodic),
-                                    angle_unit=angle_unit)
-    return figure_bytes(figure, fmt)
+    figure = plots.plot_free_energy(surface, basins=basins, names=_plot_names(names, units),
+                                    angular=[u == "rad" for u in units], angle_unit=angle_unit)
+    figure.axes[0].set_title(f"free-energy surface at {_moment(surface)}", fontsize="medium")
+    return figure
 
 
 def profile_bytes(profile, fmt, *, units, angle_unit="rad") -> bytes:

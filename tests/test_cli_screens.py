@@ -1,0 +1,47 @@
+"""What a user sees from the command line and its files says what it shows: units, moments, limits."""
+
+import math
+
+import numpy as np
+import pytest
+
+import gridbias as gb
+from gridbias import analysis, exports
+from gridbias.cli import main
+
+
+@pytest.fixture(scope="module")
+def angle_run(tmp_path_factory):
+    """A bias on a non-periodic angle (rad) with hills at known times, saved as a bias checkpoint."""
+    grid = gb.Grid([0.5], [3.0], [100])
+    bias = gb.GridBias(grid, sigma=[0.1], height=1.0, temperature=300.0, bias_factor=5.0)
+    rng = np.random.default_rng(11)
+    for k in range(200):
+        bias.deposit([1.0 + 1.2 * rng.random()], time=0.5 * (k + 1))
+    path = tmp_path_factory.mktemp("screens") / "angle.gbz"
+    bias.save(str(path))
+    return path, bias
+
+
+def test_export_refuses_a_time_after_the_end_of_the_run(capsys, angle_run, tmp_path):
+    path, _ = angle_run
+    code = main(["export", str(path), str(tmp_path / "late.npz"), "--time", "5000"])
+    _, err = capsys.readouterr()
+    assert code == 2
+    assert "--time 5000 ps is after the end of the run (100 ps" in err
+    assert not (tmp_path / "late.npz").exists()
+
+
+def test_exported_figure_shows_angles_in_the_tables_unit_and_names_its_moment(angle_run):
+    pytest.importorskip("matplotlib")
+    path, bias = angle_run
+    surface = analysis.surface_at(bias, time=40.0)
+    figure = exports.surface_figure(surface, names=["theta"], units=["rad"], angle_unit="deg")
+    ax = figure.axes[0]
+    assert ax.get_title() == "free-energy surface at t = 40 ps, 80 hills"
+    assert "deg" in ax.get_xlabel() or "°" in ax.get_xlabel()
+    line = ax.get_lines()[0]
+    np.testing.assert_allclose(line.get_xdata()[[0, -1]], np.degrees([0.5, 3.0]))
+    table = exports.surface_bytes(surface, "csv", names=["theta"], units=["rad"], angle_unit="deg")
+    assert table.decode().splitlines()[0] == "theta[deg],free_energy[kJ/mol]"
+    assert math.isclose(float(table.decode().splitlines()[1].split(",")[0]), math.degrees(0.5))
