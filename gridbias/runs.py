@@ -177,7 +177,8 @@ class Run:
     units : tuple of str
         CV units ("rad", "nm", or "" when unknown).
     definitions : tuple of str
-        One phrase per CV ("dihedral of atoms 4-6-8-14"), or "" when unknown.
+        One phrase per CV ("dihedral of atom indices 4-6-8-14 (0-based; PDB serials 5-7-9-15)"), or ""
+        when unknown.
     time : float, ps
         Simulated time at the checkpoint (run checkpoints), else the time of the last hill (NaN if none).
     step : int or None
@@ -210,8 +211,10 @@ def _describe_cv(spec) -> tuple[str, str]:
         return str(spec.get("unit", "")), f"energy of a {spec.get('class', 'force')}"
     unit = "rad" if kind in _ANGLE_KINDS else "nm"
     if "atoms" in spec:
+        # OpenMM counts atoms from 0, PDB files from 1: say which is which, so nobody mixes them up
         atoms = "-".join(str(a) for a in spec["atoms"])
-        return unit, f"{kind.replace('_', ' ')} of atoms {atoms}"
+        serials = "-".join(str(int(a) + 1) for a in spec["atoms"])
+        return unit, f"{kind.replace('_', ' ')} of atom indices {atoms} (0-based; PDB serials {serials})"
     if kind == "centroid_distance":
         return unit, (f"distance between centroids of {len(spec.get('group1', []))} and "
                       f"{len(spec.get('group2', []))} atoms")

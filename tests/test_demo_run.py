@@ -85,7 +85,7 @@ def test_commands_read_the_demo_files(capsys, tiny):
     assert main(["inspect", str(folder / "run.gbz"), "--log", str(folder / "frames.gbl")]) == 0
     text = capsys.readouterr().out
     assert "OpenMM run checkpoint (step 2,000, 4 ps simulated, written on the Reference platform)" in text
-    assert "phi: dihedral of atoms 1-6-7-8, rad" in text
+    assert "phi: dihedral of atom indices 1-6-7-8 (0-based; PDB serials 2-7-8-9), rad" in text
     assert "phi: -180 .. 180 deg, 96 bins of 3.75, periodic" in text
     csv = out / "psi.csv"
     assert main(["reweight", str(folder / "run.gbz"), str(folder / "frames.gbl"), "--along", "psi",
