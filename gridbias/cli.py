@@ -30,7 +30,16 @@ from dataclasses import replace
 
 import numpy as np
 
-from .exports import FIGURE_FORMATS, TABLE_FORMATS, CVDisplay, profile_bytes, surface_bytes, write_file
+from .analysis.reweighting import DEFAULT_BURN_IN_FRACTION
+from .exports import (
+    FIGURE_FORMATS,
+    SURFACE_NPZ_KEYS,
+    TABLE_FORMATS,
+    CVDisplay,
+    profile_bytes,
+    surface_bytes,
+    write_file,
+)
 from .progress import ProgressLine
 from .runs import load_run, log_column, read_log, run_frames
 
@@ -295,6 +304,9 @@ def _cmd_reweight(args) -> int:
         bins = bins * d
     if len(bins) != d or min(bins) < 2:
         raise CommandError(f"--bins: give one number >= 2, or one per --along column ({d}), got {args.bins}")
+    if args.burn_in is not None and args.method != "final":
+        raise CommandError(f"--burn-in applies to --method final only (the 'offset' method uses every frame); "
+                           f"add --method final or leave out --burn-in {args.burn_in:g}")
     ranges = args.range or []
     if ranges and len(ranges) != d:
         raise CommandError(f"--range: give it once per --along column ({d}), in order; got {len(ranges)}")
@@ -312,7 +324,8 @@ def _cmd_reweight(args) -> int:
         weights = analysis.offset_weights(bias, t, progress=progress.counter("reweighting the frames"),
                                           **kwargs)
     else:
-        weights = analysis.final_bias_weights(bias, t, cvs, burn_in_fraction=args.burn_in)
+        burn_in = DEFAULT_BURN_IN_FRACTION if args.burn_in is None else args.burn_in
+        weights = analysis.final_bias_weights(bias, t, cvs, burn_in_fraction=burn_in)
     used = weights.used
     dihedrals = _dihedral_columns(log, run)
     edges = [_edges(values[used, i], c, c in dihedrals, bins[i], ranges[i] if ranges else None, show.scale(i))
@@ -481,9 +494,10 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=_Formatter,
         description="Write the free-energy surface of a checkpoint (kJ/mol, minimum 0, on the bias grid's "
                     "nodes) to one or more files; the extension chooses the format. CSV: one row per node, "
-                    "CV columns then free_energy[kJ/mol]. NPZ: free_energy (grid shape), axis0.. (node "
-                    "coordinates, CV units), names, units, periodic, kT, temperature, bias_factor, time_ps, "
-                    "n_hills. PNG/SVG/PDF: a filled-contour (2 CVs) or curve (1 CV) figure.",
+                    "CV columns then free_energy[kJ/mol]. NPZ: axis0.. (node coordinates, CV units), "
+                    f"{', '.join(SURFACE_NPZ_KEYS)}; free_energy has the grid's shape, bias_factor is NaN "
+                    "for standard metadynamics. PNG/SVG/PDF: a filled-contour (2 CVs) or curve (1 CV) "
+                    "figure titled with the time and hill count it shows.",
         epilog=_UNITS_NOTE)
     p.add_argument("checkpoint", metavar="CHECKPOINT", help="the checkpoint file (.gbz)")
     p.add_argument("outputs", nargs="+", metavar="OUTPUT",
@@ -516,8 +530,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "deg for a dihedral CV, else the data's range)")
     p.add_argument("--method", choices=("offset", "final"), default="offset",
                    help="'offset': c(t) weights (default); 'final': final-bias weights")
-    p.add_argument("--burn-in", type=float, default=0.5, metavar="FRACTION",
-                   help="'final' only: fraction of the run left out at its start (default 0.5)")
+    p.add_argument("--burn-in", type=float, metavar="FRACTION",
+                   help=f"with --method final only: fraction of the run left out at its start (default "
+                        f"{DEFAULT_BURN_IN_FRACTION:g})")
     p.add_argument("--output", dest="outputs", nargs="+", metavar="FILE",
                    help="files to write: .csv, .npz, .png, .svg, .pdf")
     _add_frames(p)

@@ -19,8 +19,12 @@ import numpy as np
 
 from .errors import OutputError, ParameterError
 
-__all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "CVDisplay", "surface_bytes", "surface_figure", "profile_bytes",
+__all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "SURFACE_NPZ_KEYS", "CVDisplay", "surface_bytes", "surface_figure", "profile_bytes",
            "shown_profile", "figure_bytes", "require_plots", "write_file"]
+
+#: Arrays of a surface's .npz file besides ``axis0, axis1, ...`` (the node coordinates, CV units).
+SURFACE_NPZ_KEYS = ("free_energy", "names", "units", "periodic", "lower", "upper", "kT", "bias_factor",
+                    "time_ps", "n_hills")
 
 #: File types (extensions) of tables and of figures.
 TABLE_FORMATS = ("csv", "npz")
@@ -135,6 +139,7 @@ def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) 
                       periodic=np.asarray(grid.periodic), lower=np.asarray(grid.lower),
                       upper=np.asarray(grid.upper), kT=np.float64(surface.kT), bias_factor=np.float64(gamma),
                       time_ps=np.float64(surface.time), n_hills=np.int64(surface.n_hills))
+        assert set(arrays) == {f"axis{i}" for i in range(grid.ndim)} | set(SURFACE_NPZ_KEYS)
         return _npz_bytes(arrays)
     return figure_bytes(surface_figure(surface, names=names, units=units, angle_unit=angle_unit,
                                        basins=basins), fmt)

@@ -45,3 +45,24 @@ def test_exported_figure_shows_angles_in_the_tables_unit_and_names_its_moment(an
     table = exports.surface_bytes(surface, "csv", names=["theta"], units=["rad"], angle_unit="deg")
     assert table.decode().splitlines()[0] == "theta[deg],free_energy[kJ/mol]"
     assert math.isclose(float(table.decode().splitlines()[1].split(",")[0]), math.degrees(0.5))
+
+
+def test_export_help_lists_exactly_the_npz_arrays_written(capsys, angle_run, tmp_path):
+    path, _ = angle_run
+    assert main(["export", str(path), str(tmp_path / "fes.npz")]) == 0
+    with np.load(tmp_path / "fes.npz") as data:
+        written = set(data.files)
+    assert written == {"axis0"} | set(exports.SURFACE_NPZ_KEYS)
+    capsys.readouterr()
+    assert main(["export", "--help"]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    for key in exports.SURFACE_NPZ_KEYS:
+        assert key in text
+    assert "temperature," not in text
+
+
+def test_burn_in_without_the_final_method_is_refused(capsys, tmp_path):
+    code = main(["reweight", "missing.gbz", "missing.gbl", "--along", "cv0", "--burn-in", "0.2"])
+    _, err = capsys.readouterr()
+    assert code == 2
+    assert "--burn-in applies to --method final only" in err
