@@ -305,8 +305,8 @@ def _cmd_reweight(args) -> int:
     if len(bins) != d or min(bins) < 2:
         raise CommandError(f"--bins: give one number >= 2, or one per --along column ({d}), got {args.bins}")
     if args.burn_in is not None and args.method != "final":
-        raise CommandError(f"--burn-in applies to --method final only (the 'offset' method uses every frame); "
-                           f"add --method final or leave out --burn-in {args.burn_in:g}")
+        raise CommandError("--burn-in applies to --method final only (the 'offset' method uses every "
+                           f"frame); add --method final or leave out --burn-in {args.burn_in:g}")
     ranges = args.range or []
     if ranges and len(ranges) != d:
         raise CommandError(f"--range: give it once per --along column ({d}), in order; got {len(ranges)}")
