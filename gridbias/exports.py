@@ -19,8 +19,8 @@ import numpy as np
 
 from .errors import OutputError, ParameterError
 
-__all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "SURFACE_NPZ_KEYS", "CVDisplay", "surface_bytes", "surface_figure",
-           "profile_bytes", "shown_profile", "figure_bytes", "require_plots", "write_file"]
+__all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "SURFACE_NPZ_KEYS", "CVDisplay", "surface_bytes",
+           "surface_figure", "profile_bytes", "shown_profile", "figure_bytes", "require_plots", "write_file"]
 
 #: Arrays of a surface's .npz file besides ``axis0, axis1, ...`` (the node coordinates, CV units).
 SURFACE_NPZ_KEYS = ("free_energy", "names", "units", "periodic", "lower", "upper", "kT", "bias_factor",
