@@ -83,6 +83,34 @@ def test_no_import_cycle():
     assert cycle is None, "import cycle: " + " -> ".join(cycle)
 
 
+# The rows of the layout picture in DEVELOPERS.md, bottom up: a module imports only from its row or below.
+LAYERS = {
+    "files": ["errors", "_files", "checkpoint", "cvlog"],
+    "core": ["gridbias", "grid", "walls", "history", "_kernels", "bias", "walkers", "testsystems", "_dynamics"],
+    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm"],
+    "application": ["demo"],
+    "entry point": ["cli", "__main__"],
+}
+
+
+def _layer(name):
+    parts = name.split(".")
+    top = parts[1] if len(parts) > 1 else "gridbias"
+    return next(k for k, (_, members) in enumerate(LAYERS.items()) if top in members)
+
+
+def test_every_module_has_a_row_in_the_layout_picture():
+    for name in MODULES:
+        _layer(name)  # raises StopIteration for a module DEVELOPERS.md does not place
+
+
+def test_imports_run_down_the_layout_picture():
+    rows = list(LAYERS)
+    upward = [f"{name} ({rows[_layer(name)]}) imports {target} ({rows[_layer(target)]})"
+              for name, targets in GRAPH.items() for target in targets if _layer(target) > _layer(name)]
+    assert upward == []
+
+
 def test_only_the_main_module_imports_the_command_line():
     importers = sorted(name for name, targets in GRAPH.items() if "gridbias.cli" in targets)
     assert importers == ["gridbias.__main__"]
