@@ -126,12 +126,14 @@ def test_module_is_small_and_states_its_job(name):
 
 
 def test_one_atomic_writer_and_no_private_quantity_values():
-    """Renames that put a file in place happen in gridbias/_files.py only; nothing reads Quantity._value;
-    no code switches on class names."""
+    """Renames that put a file in place happen in gridbias/_files.py only; quantities are converted in
+    gridbias/openmm/_units.py only and nothing reads Quantity._value; no code switches on class names."""
     for path in MODULES.values():
         text = path.read_text()
         if path.name != "_files.py":
             assert not re.search(r"os\.(replace|rename|link)\(", text), f"{path} writes files its own way"
+        if path.name != "_units.py":
+            assert "value_in_unit" not in text, f"{path} converts quantities its own way"
         assert not re.search(r"\._value\b", text), f"{path} reads a quantity's private value"
         assert "__name__ ==" not in text, f"{path} switches on a class name"
 
