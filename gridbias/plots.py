@@ -142,12 +142,12 @@ def _surface_data(result):
                          f"got {type(result).__name__}")
 
 
-def _sparse_bins(result, min_frames) -> np.ndarray:
-    """Bins of a Profile with fewer than ``min_frames`` frames (none for a Surface)."""
+def _sparse_bins(result, min_frames, shape) -> np.ndarray:
+    """Bins of a Profile with fewer than ``min_frames`` frames (none for a Surface, of ``shape``)."""
     from .analysis import Profile
 
     if not isinstance(result, Profile):
-        return np.zeros(np.shape(result.free_energy), dtype=bool)
+        return np.zeros(shape, dtype=bool)
     if isinstance(min_frames, bool) or not isinstance(min_frames, (int, np.integer)) or min_frames < 0:
         raise ParameterError(f"min_frames must be an integer >= 0, got {min_frames!r}")
     return np.isfinite(result.free_energy) & (np.asarray(result.counts) < min_frames)
@@ -268,7 +268,7 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
     if ndim == 1:
         x = np.asarray(coords[0]) * scales[0]
         y = fes * factor
-        sparse = _sparse_bins(result, min_frames)
+        sparse = _sparse_bins(result, min_frames, fes.shape)
         solid = np.where(sparse, np.nan, y)
         if error is not None:
             band = np.where(sparse, np.nan, error * factor)

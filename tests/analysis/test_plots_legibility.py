@@ -65,3 +65,11 @@ def test_bins_without_frames_have_a_key():
     figure = plots.plot_free_energy(profile(fes, np.where(np.isnan(fes), 0, 50)))
     labels = [t.get_text() for t in figure.axes[0].get_legend().get_texts()]
     assert labels == ["no frames"]
+
+
+def test_a_periodic_surface_curve_is_closed_and_drawn_whole():
+    grid = gb.Grid([-np.pi], [np.pi], [36], periodic=[True])
+    fes = 5.0 * (1 - np.cos(grid.axes[0]))
+    figure = plots.plot_free_energy(analysis.Surface(grid, fes, 10.0, 5, KT, 6.0))
+    line = figure.axes[0].get_lines()[0]
+    assert line.get_xdata().size == 37 and np.isfinite(line.get_ydata()).all()
