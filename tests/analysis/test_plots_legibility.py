@@ -40,7 +40,7 @@ def test_both_estimates_of_one_difference_share_a_colour():
 def test_initial_height_line_is_inside_the_axes_and_clear_of_the_legend():
     times = np.linspace(0.0, 100.0, 200)
     heights = 1.2 * np.exp(-times / 30.0)
-    figure = plots.plot_hill_heights(times, heights, initial_height=1.2, max_fraction=0.05)
+    figure = plots.plot_hill_heights(times, heights, initial_height=1.2, max_height_fraction=0.05)
     ax = figure.axes[0]
     assert ax.get_ylim()[1] > 1.2 * 1.5  # room above the reference line
     assert ax.get_legend()._loc == 3  # lower left: the corner decaying heights leave free
