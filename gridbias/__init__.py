@@ -15,6 +15,7 @@ from .errors import (
     GridError,
     LockError,
     ParameterError,
+    WriteError,
 )
 from .grid import Grid
 from .history import HillHistory
@@ -38,5 +39,6 @@ __all__ = [
     "LockError",
     "CVLogError",
     "BlownUpError",
+    "WriteError",
     "__version__",
 ]

@@ -49,7 +49,7 @@ import zipfile
 
 import numpy as np
 
-from .errors import CheckpointError, LockError, ParameterError
+from .errors import CheckpointError, LockError, ParameterError, WriteError
 
 try:
     import fcntl
@@ -77,6 +77,8 @@ _NAME_RE = re.compile(r"(?!__)[A-Za-z0-9_][A-Za-z0-9_.\-]{0,199}")
 _ARRAY_KINDS = "biufc"  # bool, signed, unsigned, float, complex
 _ZIP_DATE = (1980, 1, 1, 0, 0, 0)  # fixed member timestamps: same content, same bytes
 _MAX_JSON_DEPTH = 100
+MAX_MEMBERS = 1024  # arrays in one checkpoint (the largest written holds about 12)
+_MAX_NPY_HEADER = 10_000  # bytes of one .npy header (ours are under 200)
 
 # Leading bytes of files people may hand us by mistake, to say what the file is instead.
 _FOREIGN_SIGNATURES = (
@@ -99,9 +101,9 @@ def _encode_json(value, what: str) -> bytes:
     return json.dumps(value, ensure_ascii=False, allow_nan=False).encode("utf-8")
 
 
-def _check_json(value, where: str, depth: int) -> None:
-    if depth > _MAX_JSON_DEPTH:
-        raise ParameterError(f"{where} is nested deeper than {_MAX_JSON_DEPTH} levels (circular?)")
+def _check_json(value, where: str, depth: int, max_depth: int = _MAX_JSON_DEPTH) -> None:
+    if depth > max_depth:
+        raise ParameterError(f"{where} is nested deeper than {max_depth} levels (circular?)")
     if value is None or isinstance(value, (bool, str, int)):
         return
     if isinstance(value, float):
@@ -112,13 +114,13 @@ def _check_json(value, where: str, depth: int) -> None:
         return
     if isinstance(value, (list, tuple)):
         for i, item in enumerate(value):
-            _check_json(item, f"{where}[{i}]", depth + 1)
+            _check_json(item, f"{where}[{i}]", depth + 1, max_depth)
         return
     if isinstance(value, dict):
         for key, item in value.items():
             if not isinstance(key, str):
                 raise ParameterError(f"{where} has key {key!r} ({type(key).__name__}); keys must be str")
-            _check_json(item, f"{where}[{key!r}]", depth + 1)
+            _check_json(item, f"{where}[{key!r}]", depth + 1, max_depth)
         return
     raise ParameterError(
         f"{where} has type {type(value).__name__}, which JSON cannot hold exactly; allowed: dict (str keys), "
@@ -138,7 +140,7 @@ def _write_atomically(path: str, chunks, what: str) -> None:
     """Write the byte chunks to `path` through a fsynced temporary file and an atomic rename.
 
     On any failure the temporary file is removed, an existing file at `path` is left untouched and a
-    CheckpointError naming `what`, the path and the cause is raised (chained from the OSError).
+    WriteError naming `what`, the path and the cause is raised (chained from the OSError).
     """
     folder = os.path.dirname(os.path.abspath(path))
     tmp = None
@@ -153,7 +155,7 @@ def _write_atomically(path: str, chunks, what: str) -> None:
         os.replace(tmp, path)
         tmp = None
     except OSError as exc:
-        raise CheckpointError(f"could not write {what} {path!r}: {_reason(exc)}") from exc
+        raise WriteError(f"could not write {what} {path!r}: {_reason(exc)}", path=path) from exc
     finally:
         if tmp is not None:
             try:
@@ -163,9 +165,9 @@ def _write_atomically(path: str, chunks, what: str) -> None:
     try:
         _fsync_directory(folder)
     except OSError as exc:
-        raise CheckpointError(
+        raise WriteError(
             f"wrote {what} {path!r}, but could not sync its folder, so the rename may not survive a power "
-            f"failure: {_reason(exc)}"
+            f"failure: {_reason(exc)}", path=path
         ) from exc
 
 
@@ -230,7 +232,7 @@ def write_checkpoint(path, meta: dict, arrays: dict, *, kind: str) -> None:
     ------
     ParameterError
         `meta`, `arrays` or `kind` cannot be stored (the message names the entry and what is allowed).
-    CheckpointError
+    WriteError
         The file could not be written (chained from the OSError; the old file, if any, is intact).
 
     Notes
@@ -326,8 +328,9 @@ def read_checkpoint(path, *, kind: str | None = None) -> tuple[dict, dict]:
 
     Notes
     -----
-    Arrays are read with ``allow_pickle=False``; nothing in the file is executed. Peak memory is about
-    twice the file size.
+    Nothing in the file is unpickled or executed. Memory is bounded by the file: members must be stored
+    uncompressed and each array's header must account for exactly its bytes, so peak memory is about
+    twice the file size whatever the file declares.
     """
     path = os.fspath(path)
     try:
@@ -404,33 +407,106 @@ def _read_kind(path: str, raw: bytes, kind_len: int) -> str:
 
 
 def _parse_payload(path: str, payload: bytes) -> tuple[dict, dict]:
+    """Unpack the archive of a checksum-valid file, never allocating more than the file holds.
+
+    Every member must be stored uncompressed (the only method the writer uses) with a ``.npy`` header
+    whose shape and dtype account for exactly the member's bytes, so the arrays' total size is bounded
+    by the file size before anything is allocated.
+    """
     try:
-        npz = np.load(io.BytesIO(payload), allow_pickle=False)
-        if not isinstance(npz, np.lib.npyio.NpzFile):
-            raise ValueError("the payload is not an .npz archive")
-        with npz:
-            loaded = {name: npz[name] for name in npz.files}
+        loaded = {}
+        with zipfile.ZipFile(io.BytesIO(payload)) as archive:
+            infos = archive.infolist()
+            if len(infos) > MAX_MEMBERS:
+                raise ValueError(f"the archive has {len(infos)} members; at most {MAX_MEMBERS} are allowed")
+            for info in infos:
+                name = _member_name(info, loaded)
+                loaded[name] = _read_member(archive, info)
         if _META_MEMBER not in loaded:
             raise ValueError(f"the archive has no {_META_MEMBER} member")
         meta_array = loaded.pop(_META_MEMBER)
         if meta_array.dtype != np.uint8 or meta_array.ndim != 1:
             raise ValueError(f"{_META_MEMBER} has dtype {meta_array.dtype} and shape {meta_array.shape}")
-        meta = json.loads(meta_array.tobytes().decode("utf-8"), parse_constant=_refuse_constant)
+        meta = decode_json(meta_array.tobytes())
         if not isinstance(meta, dict):
             raise ValueError(f"meta is a {type(meta).__name__}, not a dict")
-        for name, array in loaded.items():
-            if array.dtype.kind not in _ARRAY_KINDS or array.dtype.fields is not None:
-                raise ValueError(f"array {name!r} has dtype {array.dtype}")
     except Exception as exc:  # any parser failure on a checksum-valid file: report it, never half-load
         raise CheckpointError(
             f"checkpoint {path!r} has a valid checksum but an unreadable payload "
-            f"({type(exc).__name__}: {exc})"
+            f"({type(exc).__name__}: {_short(exc)})"
         ) from exc
     return meta, loaded
 
 
+def _member_name(info: zipfile.ZipInfo, loaded: dict) -> str:
+    if info.compress_type != zipfile.ZIP_STORED:
+        raise ValueError(f"member {info.filename!r} uses compression method {info.compress_type}; "
+                         "gridbias writes members uncompressed only")
+    if info.file_size != info.compress_size:
+        raise ValueError(f"member {info.filename!r} declares {info.file_size} bytes but stores "
+                         f"{info.compress_size}")
+    stem = info.filename[:-4] if info.filename.endswith(".npy") else None
+    if stem is None or not (stem == _META_MEMBER or _NAME_RE.fullmatch(stem)):
+        raise ValueError(f"member name {info.filename[:80]!r} is not one gridbias writes")
+    if stem in loaded:
+        raise ValueError(f"member {info.filename!r} appears twice")
+    return stem
+
+
+def _read_member(archive: zipfile.ZipFile, info: zipfile.ZipInfo) -> np.ndarray:
+    """One array, after checking that its header's shape and dtype fill exactly the member's bytes."""
+    with archive.open(info) as member:
+        version = np.lib.format.read_magic(member)
+        if version == (1, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_1_0(member, max_header_size=_MAX_NPY_HEADER)
+        elif version == (2, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_2_0(member, max_header_size=_MAX_NPY_HEADER)
+        else:
+            raise ValueError(f"member {info.filename!r} has .npy format version {version}")
+        if dtype.kind not in _ARRAY_KINDS or dtype.fields is not None or dtype.shape != () or dtype.hasobject:
+            raise ValueError(f"member {info.filename!r} has dtype {dtype}")
+        n_items = math.prod(shape)
+        data_size = n_items * dtype.itemsize
+        if member.tell() + data_size != info.file_size:
+            raise ValueError(f"member {info.filename!r}: shape {shape} of {dtype} needs {data_size} bytes, "
+                             f"the member holds {info.file_size - member.tell()}")
+        data = bytearray(data_size)
+        if member.readinto(data) != data_size:
+            raise ValueError(f"member {info.filename!r} is shorter than its header says")
+    return np.frombuffer(data, dtype=dtype).reshape(shape, order="F" if fortran else "C")
+
+
+def decode_json(raw: bytes, *, max_depth: int = _MAX_JSON_DEPTH):
+    """Parse UTF-8 JSON written by `_encode_json`, refusing what the writer never produces.
+
+    Refused (ValueError): invalid UTF-8 or JSON, NaN/Infinity, numbers that overflow a float (``1e400``),
+    integers of more than 4300 digits, nesting deeper than `max_depth`.
+    """
+    try:
+        value = json.loads(raw.decode("utf-8"), parse_constant=_refuse_constant, parse_float=_finite_float)
+    except RecursionError:
+        raise ValueError(f"JSON nested deeper than {max_depth} levels") from None
+    try:
+        _check_json(value, "JSON", 0, max_depth)
+    except ParameterError as exc:
+        raise ValueError(str(exc)) from None
+    return value
+
+
+def _finite_float(text: str) -> float:
+    x = float(text)
+    if not math.isfinite(x):
+        raise ValueError(f"JSON number {text[:40]} does not fit a float")
+    return x
+
+
 def _refuse_constant(name: str):
     raise ValueError(f"JSON constant {name} is not allowed")
+
+
+def _short(exc, limit: int = 300) -> str:
+    text = " ".join(str(exc).split())
+    return text if len(text) <= limit else text[:limit] + "..."
 
 
 # ------------------------------------------------------------------------------------------------------ lock
@@ -440,7 +516,8 @@ class CheckpointLock:
     The claim is a POSIX ``flock`` on the sidecar file ``<path>.lock``, which holds the holder's pid,
     host name and start time as JSON. The kernel drops the flock when the holder exits or is killed, so a
     lock file left by a dead process is taken over silently (its old content is kept in
-    `previous_holder`). While the lock is held, stray temporary files of `path` left by killed writers
+    `previous_holder`). Children the holder forks do not keep the lock: they close their copy at the fork,
+    so the lock ends with the holder even while its children live on. While the lock is held, stray temporary files of `path` left by killed writers
     (``<path>.tmp-<16 hex digits>``) are removed.
 
     Parameters
@@ -485,53 +562,97 @@ class CheckpointLock:
         return self._fd is not None
 
     def acquire(self) -> "CheckpointLock":
-        """Claim the path; raise LockError naming the holder (pid, host) if another one holds it."""
+        """Claim the path; raise LockError naming the holder (pid, host) if another one holds it.
+
+        The lock file appears with its holder already recorded (it is written, locked, then linked into
+        place), so a refusal always names the holder, even when two runs start at the same moment.
+        """
         if fcntl is None:
             raise LockError("CheckpointLock needs POSIX file locking (fcntl), which this platform lacks")
         if self._fd is not None:
             raise LockError(f"this CheckpointLock already holds {self.lock_path!r}")
-        while True:
+        for _ in range(1000):  # each retry means the file changed under us; a handful is the most seen
             try:
-                fd = os.open(self.lock_path, os.O_RDWR | os.O_CREAT, 0o666)
+                fd = os.open(self.lock_path, os.O_RDWR)
+            except FileNotFoundError:
+                if self._publish(None):
+                    break
+                continue
             except OSError as exc:
-                raise CheckpointError(
-                    f"could not create lock file {self.lock_path!r}: {_reason(exc)}"
-                ) from exc
+                raise WriteError(f"could not open lock file {self.lock_path!r}: {_reason(exc)}",
+                                 path=self.lock_path) from exc
             try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except BlockingIOError:
+                locked = _try_flock(fd)
+                same = _same_file(fd, self.lock_path)
+            except OSError as exc:
+                os.close(fd)
+                raise WriteError(f"could not lock {self.lock_path!r}: {_reason(exc)}", path=self.lock_path) from exc
+            if not same:  # replaced or removed meanwhile: look again
+                os.close(fd)
+                continue
+            if not locked:
                 holder = _read_holder(fd)
                 os.close(fd)
-                raise LockError(self._held_message(holder)) from None
-            except OSError as exc:
-                os.close(fd)
-                raise CheckpointError(f"could not lock {self.lock_path!r}: {_reason(exc)}") from exc
-            # The previous holder may have released (and unlinked) the file between our open and flock:
-            # then we locked an orphan and must start again on the current file.
+                if holder is None:  # a file from an older gridbias being written right now: look again
+                    time.sleep(0.01)
+                    continue
+                raise LockError(self._held_message(holder))
+            # Its holder died: replace the file by ours, complete before it becomes visible.
+            previous = _read_holder(fd)
             try:
-                same = os.path.samestat(os.fstat(fd), os.stat(self.lock_path))
-            except FileNotFoundError:
-                same = False
-            if same:
+                published = self._publish(fd)
+            finally:
+                os.close(fd)
+            if published:
+                self.previous_holder = previous
                 break
-            os.close(fd)
-        self.previous_holder = _read_holder(fd)
+        else:
+            raise LockError(f"could not claim {self.lock_path!r}: it kept changing while being claimed")
+        self._remove_stray_temp_files()
+        _HELD.add(self)
+        return self
+
+    def _publish(self, stale_fd) -> bool:
+        """Write our record to a new locked file and put it at lock_path: by link() when there is no file
+        (False if another process was faster), by rename over the stale file whose lock we hold."""
         record = {"pid": os.getpid(), "host": socket.gethostname(),
                   "since": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
+        tmp = None
         try:
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, json.dumps(record).encode("utf-8") + b"\n", 0)
+            fd, tmp = _create_temp(self.lock_path, os.O_RDWR)
+            try:
+                _try_flock(fd)
+                _write_all(fd, json.dumps(record).encode("utf-8") + b"\n")
+                if stale_fd is None:
+                    try:
+                        os.link(tmp, self.lock_path)
+                    except FileExistsError:
+                        os.close(fd)
+                        return False
+                else:
+                    os.replace(tmp, self.lock_path)
+                    tmp = None
+            except BaseException:
+                os.close(fd)
+                raise
         except OSError as exc:
-            os.close(fd)
-            raise CheckpointError(f"could not write lock file {self.lock_path!r}: {_reason(exc)}") from exc
+            raise WriteError(f"could not write lock file {self.lock_path!r}: {_reason(exc)}",
+                             path=self.lock_path) from exc
+        finally:
+            if tmp is not None:
+                try:
+                    os.unlink(tmp)
+                except FileNotFoundError:
+                    pass
+        self.previous_holder = None
         self._fd = fd
-        self._remove_stray_temp_files()
-        return self
+        return True
 
     def release(self) -> None:
         """Give the path up and remove the lock file (no-op when not held)."""
         if self._fd is None:
             return
+        _HELD.discard(self)
         try:
             os.unlink(self.lock_path)  # while still locked, so nobody can lock this file in between
         except FileNotFoundError:
@@ -539,6 +660,12 @@ class CheckpointLock:
         finally:
             os.close(self._fd)
             self._fd = None
+
+    def _drop_after_fork(self) -> None:
+        """In a forked child: close the child's copy of the locked file, so the lock dies with its holder."""
+        fd, self._fd = self._fd, None
+        if fd is not None:
+            os.close(fd)
 
     def __enter__(self) -> "CheckpointLock":
         return self.acquire()
@@ -565,6 +692,49 @@ class CheckpointLock:
                     os.unlink(os.path.join(folder, name))
                 except FileNotFoundError:
                     pass
+
+
+def _try_flock(fd: int) -> bool:
+    """Take an exclusive flock without waiting; False when another open file holds it."""
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        return False
+    return True
+
+
+def _same_file(fd: int, path: str) -> bool:
+    try:
+        return os.path.samestat(os.fstat(fd), os.stat(path))
+    except FileNotFoundError:
+        return False
+
+
+class _HeldLocks:
+    """Every lock (checkpoint lock, CV log writer) this process holds. A forked child (a multiprocessing
+    worker, for example) closes its inherited copies at once, so a lock never outlives its holder because
+    a child lives on, and a refusal never names a dead process."""
+
+    def __init__(self):
+        import weakref
+
+        self._held = weakref.WeakSet()
+        if hasattr(os, "register_at_fork"):
+            os.register_at_fork(after_in_child=self._drop_all)
+
+    def add(self, holder) -> None:
+        self._held.add(holder)
+
+    def discard(self, holder) -> None:
+        self._held.discard(holder)
+
+    def _drop_all(self) -> None:
+        for holder in list(self._held):
+            holder._drop_after_fork()
+        self._held.clear()
+
+
+_HELD = _HeldLocks()
 
 
 def _read_holder(fd: int):

@@ -42,8 +42,18 @@ from typing import NamedTuple
 import numpy as np
 
 from .checkpoint import MAGIC as CHECKPOINT_MAGIC
-from .checkpoint import _create_temp, _describe_foreign, _encode_json, _fsync_directory, _reason, _write_all
-from .errors import CVLogError, LockError, ParameterError
+from .checkpoint import (
+    _HELD,
+    _create_temp,
+    _describe_foreign,
+    _encode_json,
+    _fsync_directory,
+    _reason,
+    _short,
+    _write_all,
+    decode_json,
+)
+from .errors import CVLogError, LockError, ParameterError, WriteError
 
 try:
     import fcntl
@@ -198,13 +208,18 @@ def _read_header(fd: int, path: str) -> _Header:
     if hashlib.sha256(head[:32] + rest).digest() != digest:
         raise CVLogError(f"CV log {path!r} has a damaged header: it fails its SHA-256 checksum")
     try:
-        text = json.loads(rest[:text_len].decode("utf-8"))
+        text = decode_json(rest[:text_len])
+        if not isinstance(text, dict) or set(text) != {"columns", "units", "metadata"}:
+            raise ValueError("the header is not {columns, units, metadata}")
         columns, units, metadata = text["columns"], text["units"], text["metadata"]
         _check_columns(columns, units)
         if len(columns) != m or not isinstance(metadata, dict) or rest[text_len:].strip(b"\x00"):
             raise ValueError("inconsistent header fields")
-    except (ValueError, KeyError, TypeError, ParameterError) as exc:
-        raise CVLogError(f"CV log {path!r} has a damaged header ({type(exc).__name__}: {exc})") from exc
+        from ._identity import check_log_metadata
+
+        check_log_metadata(metadata)
+    except (ValueError, KeyError, TypeError) as exc:  # ParameterError is a ValueError
+        raise CVLogError(f"CV log {path!r} has a damaged header ({type(exc).__name__}: {_short(exc)})") from exc
     return _Header(tuple(columns), tuple(units), metadata, data_offset)
 
 
@@ -215,8 +230,11 @@ def _check_columns(columns, units) -> None:
         raise ParameterError(f"columns has {len(columns)} names; at most {MAX_COLUMNS} are allowed")
     for name in columns:
         if not isinstance(name, str) or not name:
-            raise ParameterError(f"column names must be non-empty str, got {name!r} in columns {columns!r}")
-    duplicates = sorted({name for name in columns if columns.count(name) > 1})
+            raise ParameterError(f"column names must be non-empty str, got {name!r}")
+    seen, repeated = set(), set()
+    for name in columns:  # linear in the number of columns
+        (repeated if name in seen else seen).add(name)
+    duplicates = sorted(repeated)
     if duplicates:
         raise ParameterError(f"column names must be unique; repeated: {duplicates}")
     if isinstance(units, str) or not isinstance(units, (list, tuple)) or len(units) != len(columns):
@@ -226,6 +244,8 @@ def _check_columns(columns, units) -> None:
     for unit in units:
         if not isinstance(unit, str):
             raise ParameterError(f"units must be str (use '' or '1' for dimensionless), got {unit!r}")
+    if not isinstance(units, (list, tuple)):
+        raise ParameterError("units must be a list")
 
 
 def _column_index(columns, name, path) -> int:
@@ -266,6 +286,8 @@ class CVLogWriter:
     ------
     ParameterError
         Bad columns, units or metadata.
+    WriteError
+        The file cannot be created or written (disk full, I/O error, no permission).
     CVLogError
         The existing file is not a CV log, is damaged, or its columns, units or metadata differ (the
         message says which), or it cannot be created or opened.
@@ -320,7 +342,7 @@ class CVLogWriter:
     def write(self, rows) -> None:
         """Append one row, shape (m,), or several, shape (k, m); values in the columns' units.
 
-        NaN and infinity are stored as they are. Raises ParameterError for the wrong shape and CVLogError
+        NaN and infinity are stored as they are. Raises ParameterError for the wrong shape and WriteError
         if the file cannot be written (the file then keeps exactly its previous records).
         """
         fd = self._require_open()
@@ -344,7 +366,7 @@ class CVLogWriter:
                 os.ftruncate(fd, self._data_offset + self._n_records * self._record_size)
             except OSError:
                 self._close_quietly()  # cannot restore record alignment: refuse further writes
-            raise CVLogError(f"could not append to CV log {self.path!r}: {_reason(exc)}") from exc
+            raise WriteError(f"could not append to CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
         self._n_records += array.shape[0]
 
     def flush(self) -> None:
@@ -353,7 +375,7 @@ class CVLogWriter:
         try:
             os.fsync(fd)
         except OSError as exc:
-            raise CVLogError(f"could not flush CV log {self.path!r}: {_reason(exc)}") from exc
+            raise WriteError(f"could not flush CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
 
     def close(self) -> None:
         """Flush and close (idempotent)."""
@@ -403,7 +425,7 @@ class CVLogWriter:
                 os.ftruncate(fd, self._data_offset + first_drop * self._record_size)
                 n_kept = first_drop
         except OSError as exc:
-            raise CVLogError(f"could not truncate CV log {self.path!r}: {_reason(exc)}") from exc
+            raise WriteError(f"could not truncate CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
         self._n_records = n_kept
         return n - n_kept
 
@@ -425,7 +447,14 @@ class CVLogWriter:
 
     def _close_quietly(self) -> None:
         fd, self._fd = self._fd, None
+        _HELD.discard(self)
         os.close(fd)
+
+    def _drop_after_fork(self) -> None:
+        """In a forked child: close the inherited copy, so the writer's lock ends with the writer."""
+        fd, self._fd = self._fd, None
+        if fd is not None:
+            os.close(fd)
 
     def _header_bytes(self, metadata: dict) -> bytes:
         text = _encode_json({"columns": list(self.columns), "units": list(self.units), "metadata": metadata},
@@ -450,7 +479,7 @@ class CVLogWriter:
                 pass
             _fsync_directory(os.path.dirname(os.path.abspath(self.path)))
         except OSError as exc:
-            raise CVLogError(f"could not create CV log {self.path!r}: {_reason(exc)}") from exc
+            raise WriteError(f"could not create CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
         finally:
             if tmp is not None:
                 try:
@@ -464,7 +493,7 @@ class CVLogWriter:
             try:
                 fd = os.open(self.path, os.O_RDWR | os.O_APPEND)
             except OSError as exc:
-                raise CVLogError(f"could not open CV log {self.path!r}: {_reason(exc)}") from exc
+                raise WriteError(f"could not open CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
             try:
                 _lock(fd, self.path)
                 same = os.path.samestat(os.fstat(fd), os.stat(self.path))
@@ -485,11 +514,12 @@ class CVLogWriter:
                 os.ftruncate(fd, header.data_offset + body - partial)
         except OSError as exc:
             os.close(fd)
-            raise CVLogError(f"could not open CV log {self.path!r}: {_reason(exc)}") from exc
+            raise WriteError(f"could not open CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
         except BaseException:
             os.close(fd)
             raise
         self._fd = fd
+        _HELD.add(self)
         self.metadata = header.metadata
         self._data_offset = header.data_offset
         self._n_records = body // self._record_size
