@@ -8,9 +8,10 @@ import warnings
 import numpy as np
 
 from . import _kernels
-from .errors import CheckpointError, GridError, ParameterError
+from .errors import CheckpointError, GridBiasError, GridError, ParameterError
 from .grid import Grid
 from .history import HillHistory
+from ._identity import check_run_id, new_run_id
 from .walls import Wall
 
 __all__ = ["GridBias", "KB", "DEFAULT_CUTOFF"]
@@ -23,16 +24,71 @@ DEFAULT_CUTOFF = math.sqrt(2.0 * math.log(1e6))
 
 _STATE_KIND = "gridbias.bias"
 _STATE_VERSION = 1
+_STATE_FIELDS = {"kind", "version", "grid", "sigma", "height", "temperature", "bias_factor", "cutoff", "walls",
+                 "n_hills", "n_outside", "run_id", "walkers"}
+_STATE_ARRAYS = {"coefficients", "hill_centers", "hill_heights", "hill_times"}
+_MAX_COUNT = 2**53  # integers in a state file beyond this cannot be counts of anything held in memory
+
+
+def _is(value, kind) -> bool:
+    """JSON type check: bool is not a number, and an int is a float."""
+    if isinstance(value, bool):
+        return kind is bool
+    if kind is float:
+        return isinstance(value, (int, float))
+    return isinstance(value, kind)
+
+
+def _field(meta, key, kind, low=None):
+    """A number from a state's metadata, checked for type, finiteness and lower bound."""
+    value = meta[key]
+    if not _is(value, kind) or (kind is float and not math.isfinite(value)):
+        raise CheckpointError(f"bias state {key} must be {'an integer' if kind is int else 'a number'}, got "
+                              f"{_show(value)}")
+    if (low is not None and value < low) or (kind is int and value > _MAX_COUNT):
+        raise CheckpointError(f"bias state {key} = {_show(value)} is out of range")
+    return value
+
+
+def _show(value) -> str:
+    text = repr(value)
+    return text if len(text) <= 80 else text[:77] + "..."
 
 
 def _positive_scalar(name, value, allowed):
+    if isinstance(value, (str, bytes, bool, np.bool_)):
+        raise ParameterError(f"{name} must be a number ({allowed}), got {_show(value)}")
     try:
         x = float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} must be a number ({allowed}), got {value!r}") from None
+    except (TypeError, ValueError, OverflowError):
+        raise ParameterError(f"{name} must be a number ({allowed}), got {_show(value)}") from None
     if not (math.isfinite(x) and x > 0):
-        raise ParameterError(f"{name} must be finite and {allowed}, got {value!r}")
+        raise ParameterError(f"{name} must be finite and {allowed}, got {_show(value)}")
     return x
+
+
+def _numbers(name, value, what="CV values") -> np.ndarray:
+    """`value` as a float array; ParameterError naming `name` for anything that is not plain numbers."""
+    try:
+        raw = np.asarray(value)
+        if raw.dtype.kind not in "iuf":
+            raise TypeError
+        return raw.astype(float)
+    except (TypeError, ValueError, OverflowError):
+        raise ParameterError(f"{name} must be numbers ({what}), got {_show(value)}") from None
+
+
+def _time_value(name, time) -> float:
+    """A hill time in ps: a finite number, or NaN for None."""
+    if time is None:
+        return math.nan
+    if isinstance(time, (bool, np.bool_, str, bytes)) or not isinstance(time, (int, float, np.integer,
+                                                                                 np.floating)):
+        raise ParameterError(f"{name} must be a number of ps or None, got {_show(time)}")
+    t = float(time)
+    if not math.isfinite(t):
+        raise ParameterError(f"{name} must be finite (ps) or None, got {_show(time)}")
+    return t
 
 
 class GridBias:
@@ -83,7 +139,7 @@ class GridBias:
         if not isinstance(grid, Grid):
             raise ParameterError(f"grid must be a gridbias.Grid, got {type(grid).__name__}")
         d = grid.ndim
-        sigma_d = np.atleast_1d(np.asarray(sigma, dtype=float))
+        sigma_d = np.atleast_1d(_numbers("sigma", sigma, "widths in CV units"))
         if sigma_d.shape != (d,):
             raise ParameterError(f"sigma must have {d} entries (one per CV), got {np.shape(sigma)}")
         for i, s in enumerate(sigma_d):
@@ -100,12 +156,22 @@ class GridBias:
             bias_factor = gamma
         self._bias_factor = bias_factor
         self._cutoff = _positive_scalar("cutoff", cutoff, "> 0 hill widths")
+        if isinstance(walls, Wall):
+            walls = (walls,)
+        if walls is None or isinstance(walls, (str, bytes, dict)) or not hasattr(walls, "__iter__"):
+            raise ParameterError(f"walls must be a sequence of gridbias.Wall (or () for none), got {_show(walls)}")
         walls = tuple(walls)
         for w in walls:
             if not isinstance(w, Wall):
                 raise ParameterError(f"walls must hold gridbias.Wall objects, got {type(w).__name__}")
             if w.cv >= d:
                 raise ParameterError(f"Wall cv={w.cv} does not exist: the grid has {d} CVs (0..{d - 1})")
+            lo, up = grid.lower[w.cv], grid.upper[w.cv]
+            if not grid.periodic[w.cv] and not lo <= w.bound <= up:
+                warnings.warn(
+                    f"Wall on cv {w.cv} starts at {w.bound:g}, outside the grid ({lo:g} .. {up:g}): it only acts "
+                    "where the grid part of the bias is zero; put walls about 3 sigma inside the grid edges",
+                    stacklevel=2)
         self._walls = walls
         self._grid = grid
         sigma_d.setflags(write=False)
@@ -140,6 +206,7 @@ class GridBias:
         self._history = HillHistory(d)
         self._n_outside = 0
         self._warned_outside = False
+        self._run_id = new_run_id()
 
     # -- parameters ---------------------------------------------------------------------------
     grid = property(lambda self: self._grid, doc="The Grid the bias lives on.")
@@ -150,6 +217,8 @@ class GridBias:
     walls = property(lambda self: self._walls, doc="Tuple of Wall.")
     cutoff = property(lambda self: self._cutoff, doc="Hill footprint radius, in widths.")
     history = property(lambda self: self._history, doc="HillHistory of the deposited hills.")
+    run_id = property(lambda self: self._run_id, doc="The run's identity: 32 random hex digits made with the "
+                      "bias, kept by save/load, restore and copies, shared by walkers, written to CV logs.")
 
     @property
     def ndim(self) -> int:
@@ -189,7 +258,7 @@ class GridBias:
 
     # -- input checks -------------------------------------------------------------------------
     def _point(self, s, name="s") -> np.ndarray:
-        arr = np.asarray(s, dtype=float)
+        arr = _numbers(name, s)
         d = self.ndim
         if arr.ndim == 0 and d == 1:
             arr = arr.reshape(1)
@@ -199,22 +268,22 @@ class GridBias:
             raise ParameterError(f"{name} must be finite, got {arr.tolist()}: refusing NaN/inf CV values")
         return arr
 
-    def _points(self, points):
+    def _points(self, points, name="points"):
         """(n, d) float array and whether a single point was given."""
-        arr = np.asarray(points, dtype=float)
+        arr = _numbers(name, points)
         d = self.ndim
         single = arr.ndim == 0 or arr.ndim == 1
         if arr.ndim == 0 or (arr.ndim == 1 and d == 1 and arr.shape[0] == 1):
             arr = arr.reshape(1, 1)
         elif arr.ndim == 1:
             if arr.shape[0] != d:
-                raise GridError(f"points must have shape ({d},) or (n, {d}), got shape {arr.shape}")
+                raise GridError(f"{name} must have shape ({d},) or (n, {d}), got shape {arr.shape}")
             arr = arr.reshape(1, d)
         elif arr.ndim != 2 or arr.shape[1] != d:
-            raise GridError(f"points must have shape ({d},) or (n, {d}), got shape {arr.shape}")
+            raise GridError(f"{name} must have shape ({d},) or (n, {d}), got shape {arr.shape}")
         if not np.isfinite(arr).all():
             bad = arr[~np.isfinite(arr).all(axis=1)][0]
-            raise ParameterError(f"points must be finite, got {bad.tolist()}: refusing NaN/inf CV values")
+            raise ParameterError(f"{name} must be finite, got {bad.tolist()}: refusing NaN/inf CV values")
         return np.ascontiguousarray(arr), single
 
     def _note_outside(self, s):
@@ -250,20 +319,15 @@ class GridBias:
         ``time`` (ps) is recorded in the history (NaN if not given). Outside a non-periodic axis nothing
         is deposited, 0.0 is returned and ``n_outside`` grows. NaN/inf CV values raise ParameterError.
         """
-        s = np.asarray(s, dtype=float)
-        if s.ndim == 0 and self.ndim == 1:
-            s = s.reshape(1)
-        if s.shape != (self.ndim,):
-            raise GridError(f"s must have shape ({self.ndim},) (one value per CV), got shape {np.shape(s)}")
+        s = self._point(s)  # every argument is checked before anything changes
+        t = _time_value("time", time)
         h = _kernels.deposit_point(self._coef, self.ndim, self._lower3, self._upper3, self._spacing3,
                                    self._bins3, self._periodic3, s, self._sigma, self._height,
                                    self._cutoff, self._wt_inverse)
-        if h == -2.0:
-            raise ParameterError(f"s must be finite, got {s.tolist()}: refusing NaN/inf CV values")
         if h < 0.0:
             self._note_outside(s)
             return 0.0
-        self._history.append(s, h, np.nan if time is None else float(time))
+        self._history.append(s, h, t)
         return h
 
     def add_hills(self, centers, heights, times=None) -> None:
@@ -275,8 +339,8 @@ class GridBias:
         heights : (k,) float, kJ/mol, finite and >= 0
         times : (k,) float, ps, optional
         """
-        centers_kd, _ = self._points(centers)
-        heights_k = np.ascontiguousarray(np.atleast_1d(np.asarray(heights, dtype=float)))
+        centers_kd, _ = self._points(centers, "centers")
+        heights_k = np.ascontiguousarray(np.atleast_1d(_numbers("heights", heights, "kJ/mol")))
         k = centers_kd.shape[0]
         if heights_k.shape != (k,):
             raise ParameterError(f"heights must have shape ({k},) to match centers, got {heights_k.shape}")
@@ -285,9 +349,11 @@ class GridBias:
         if times is None:
             times_k = np.full(k, np.nan)
         else:
-            times_k = np.atleast_1d(np.asarray(times, dtype=float))
+            times_k = np.atleast_1d(_numbers("times", times, "ps"))
             if times_k.shape != (k,):
                 raise ParameterError(f"times must have shape ({k},) to match centers, got {times_k.shape}")
+            if np.isinf(times_k).any():
+                raise ParameterError("times must be finite or NaN (ps), got an infinite time")
         deposited_k = np.zeros(k, dtype=np.bool_)
         _kernels.add_hills(self._coef, self.ndim, self._lower3, self._upper3, self._spacing3, self._bins3,
                            self._periodic3, centers_kd, self._sigma, heights_k, self._cutoff, deposited_k)
@@ -360,8 +426,15 @@ class GridBias:
 
     def copy(self) -> "GridBias":
         """An independent copy (grid, history, counters)."""
-        meta, arrays = self.to_state()
-        return GridBias.from_state(meta, {k: v.copy() for k, v in arrays.items()})
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fresh = self._empty_like()
+        h = self._history
+        fresh._history.extend(h.centers, h.heights, h.times)
+        fresh._coef[...] = self._coef
+        fresh._n_outside = self._n_outside
+        fresh._run_id = self._run_id
+        return fresh
 
     def rebuilt(self, n_hills=None) -> "GridBias":
         """A new bias built by replaying the first ``n_hills`` hills of the history (default: all).
@@ -376,11 +449,12 @@ class GridBias:
             fresh = self._empty_like()
         h = self._history
         fresh.add_hills(h.centers[:n], h.heights[:n], h.times[:n])
+        fresh._run_id = self._run_id
         return fresh
 
     # -- state and checkpoints ----------------------------------------------------------------
     def to_state(self):
-        """The complete state as (meta, arrays): ``meta`` JSON-safe, ``arrays`` name -> ndarray."""
+        """The complete state as (meta, arrays): ``meta`` JSON-safe, ``arrays`` name -> ndarray (fresh copies)."""
         meta = {
             "kind": _STATE_KIND,
             "version": _STATE_VERSION,
@@ -393,54 +467,106 @@ class GridBias:
             "walls": [w.to_dict() for w in self._walls],
             "n_hills": self.n_hills,
             "n_outside": self._n_outside,
+            "run_id": self._run_id,
         }
         h = self._history
-        arrays = {
-            "coefficients": self._coef,
-            "hill_centers": np.ascontiguousarray(h.centers),
-            "hill_heights": np.ascontiguousarray(h.heights),
-            "hill_times": np.ascontiguousarray(h.times),
+        arrays = {  # copies: a state taken now stays the state of now
+            "coefficients": self._coef.copy(),
+            "hill_centers": np.array(h.centers),
+            "hill_heights": np.array(h.heights),
+            "hill_times": np.array(h.times),
         }
         return meta, arrays
 
     @classmethod
     def from_state(cls, meta, arrays) -> "GridBias":
-        """Rebuild a bias from ``to_state()`` output; checks every field and raises CheckpointError."""
+        """Rebuild a bias from ``to_state()`` output, refusing any state ``to_state`` cannot have written.
+
+        Checked before anything is allocated: every metadata field's type, range and finiteness, and every
+        array's name, dtype and shape against the metadata. Then the contents: a finite table, finite
+        hill centres inside the grid, finite heights >= 0, finite or NaN times, and the table equal to the
+        replay of its own hill history to rounding (gridbias._consistency says how, and which subset is
+        checked for very large histories). Raises CheckpointError naming the first problem.
+        """
         try:
-            if meta.get("kind") != _STATE_KIND:
-                raise CheckpointError(f"not a gridbias bias state (kind {meta.get('kind')!r})")
-            if int(meta["version"]) > _STATE_VERSION:
-                raise CheckpointError(
-                    f"bias state version {meta['version']} is newer than this gridbias reads "
-                    f"({_STATE_VERSION}); upgrade gridbias")
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                bias = cls(Grid.from_dict(meta["grid"]), meta["sigma"], meta["height"], meta["temperature"],
-                           meta["bias_factor"], [Wall.from_dict(w) for w in meta["walls"]],
-                           cutoff=meta["cutoff"])
-            coef = np.asarray(arrays["coefficients"])
-            centers = np.asarray(arrays["hill_centers"])
-            heights = np.asarray(arrays["hill_heights"])
-            times = np.asarray(arrays["hill_times"])
-            n = int(meta["n_hills"])
-            n_outside = int(meta["n_outside"])
+            return cls._checked_from_state(meta, arrays)
         except CheckpointError:
             raise
-        except (KeyError, TypeError, ValueError, AttributeError) as exc:
-            raise CheckpointError(f"bias state is incomplete or invalid: {exc}") from exc
-        if coef.shape != bias._coef.shape or coef.dtype != np.float64:
-            raise CheckpointError(f"coefficients have shape {coef.shape} ({coef.dtype}); the grid needs "
-                                  f"{bias._coef.shape} (float64)")
+        except (GridBiasError, KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
+            raise CheckpointError(f"bias state is invalid: {exc}") from exc
+
+    @classmethod
+    def _checked_from_state(cls, meta, arrays) -> "GridBias":
+        from ._consistency import table_problem
+
+        if not isinstance(meta, dict) or not isinstance(arrays, dict):
+            raise CheckpointError("bias state must be a (meta dict, arrays dict) pair")
+        if meta.get("kind") != _STATE_KIND:
+            raise CheckpointError(f"not a gridbias bias state (kind {_show(meta.get('kind'))})")
+        version = _field(meta, "version", int, low=1)
+        if version > _STATE_VERSION:
+            raise CheckpointError(f"bias state version {version} is newer than this gridbias reads "
+                                  f"({_STATE_VERSION}); upgrade gridbias")
+        unknown = set(meta) - _STATE_FIELDS
+        if unknown:
+            raise CheckpointError(f"bias state has unknown fields {sorted(unknown)[:5]}")
+        spec = meta["grid"]
+        if not isinstance(spec, dict) or set(spec) != {"lower", "upper", "bins", "periodic"}:
+            raise CheckpointError("bias state grid must hold exactly lower, upper, bins and periodic")
+        for key, kind in (("lower", float), ("upper", float), ("bins", int), ("periodic", bool)):
+            if not isinstance(spec[key], list) or not all(_is(x, kind) for x in spec[key]):
+                raise CheckpointError(f"bias state grid {key} must be a list of {kind.__name__}")
+        grid = Grid.from_dict(spec)  # GridError (memory budget included) before anything is allocated
+        d = grid.ndim
+        sigma = meta["sigma"]
+        if not isinstance(sigma, list) or len(sigma) != d or not all(_is(x, float) for x in sigma):
+            raise CheckpointError(f"bias state sigma must be a list of {d} numbers")
+        for key in ("height", "temperature", "cutoff"):
+            _field(meta, key, float)
+        if meta["bias_factor"] is not None:
+            _field(meta, "bias_factor", float)
+        walls = meta["walls"]
+        if not isinstance(walls, list) or len(walls) > 64:
+            raise CheckpointError("bias state walls must be a list of at most 64 walls")
+        for w in walls:
+            if not isinstance(w, dict) or set(w) != {"cv", "bound", "k", "side", "power"} or not _is(w["cv"], int):
+                raise CheckpointError(f"bias state wall {_show(w)} is not a wall description")
+        n = _field(meta, "n_hills", int, low=0)
+        n_outside = _field(meta, "n_outside", int, low=0)
+        run_id = check_run_id(meta["run_id"], "bias state run_id") if "run_id" in meta else None
+        if set(arrays) != _STATE_ARRAYS:
+            raise CheckpointError(f"bias state arrays are {sorted(arrays)[:6]}, expected {sorted(_STATE_ARRAYS)}")
+        shape3 = tuple(grid.shape) + (1,) * (3 - d)
+        expected = {"coefficients": (1 << d,) + shape3, "hill_centers": (n, d), "hill_heights": (n,),
+                    "hill_times": (n,)}
+        for name, shape in expected.items():
+            a = arrays[name]
+            if not isinstance(a, np.ndarray) or a.dtype != np.float64 or a.shape != shape:
+                got = (a.shape, a.dtype) if isinstance(a, np.ndarray) else type(a).__name__
+                raise CheckpointError(f"bias state array {name} is {got}; n_hills={n} and the grid need "
+                                      f"{shape} float64")
+        coef, centers = arrays["coefficients"], arrays["hill_centers"]
+        heights, times = arrays["hill_heights"], arrays["hill_times"]
         if not np.isfinite(coef).all():
             raise CheckpointError("coefficients hold NaN or infinite values")
-        d = bias.ndim
-        if centers.shape != (n, d) or heights.shape != (n,) or times.shape != (n,):
-            raise CheckpointError(
-                f"hill history does not match n_hills={n}: centers {centers.shape}, heights {heights.shape}, "
-                f"times {times.shape}")
-        bias._coef[...] = coef
-        bias._history.extend(centers.astype(float), heights.astype(float), times.astype(float))
+        if not np.isfinite(centers).all() or not grid.contains(centers).all():
+            raise CheckpointError("hill centres must be finite and inside the grid")
+        if not (np.isfinite(heights).all() and (heights >= 0).all()):
+            raise CheckpointError("hill heights must be finite and >= 0 kJ/mol")
+        if np.isinf(times).any():
+            raise CheckpointError("hill times must be finite or NaN (ps)")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            bias = cls(grid, sigma, meta["height"], meta["temperature"], meta["bias_factor"],
+                       [Wall.from_dict(w) for w in walls], cutoff=meta["cutoff"])
+        bias._history.extend(centers, heights, times)
         bias._n_outside = n_outside
+        problem = table_problem(bias, coef)
+        if problem:
+            raise CheckpointError(f"bias state contradicts itself: {problem}")
+        bias._coef[...] = coef
+        if run_id is not None:
+            bias._run_id = run_id
         return bias
 
     def describe_difference(self, other: "GridBias") -> str:
@@ -479,6 +605,7 @@ class GridBias:
         self._coef[...] = other._coef
         self._history = other._history
         self._n_outside = other._n_outside
+        self._run_id = other._run_id
 
     def save(self, path) -> None:
         """Write the complete state to ``path`` atomically (see gridbias.checkpoint)."""
