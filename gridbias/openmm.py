@@ -40,7 +40,7 @@ import numpy as np
 
 from . import _openmm_cvs as _cvs
 from ._openmm_forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
-from ._openmm_link import CHECKPOINT_KIND, DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
+from ._openmm_link import CHECKPOINT_KIND, DEFAULT_MAX_WRITE_FAILURES, BiasLink, BiasReporter
 from .bias import GridBias
 from .errors import ParameterError
 from .grid import Grid
@@ -60,7 +60,7 @@ __all__ = [
     "BiasReporter",
     "DEFAULT_FORCE_GROUP",
     "DEFAULT_PENDING_HILLS",
-    "DEFAULT_MAX_CHECKPOINT_FAILURES",
+    "DEFAULT_MAX_WRITE_FAILURES",
     "PERIODIC_PADDING",
     "CHECKPOINT_KIND",
 ]
