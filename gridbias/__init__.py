@@ -14,6 +14,7 @@ from .errors import (
     GridBiasError,
     GridError,
     LockError,
+    OutputError,
     ParameterError,
     WriteError,
 )
@@ -40,5 +41,6 @@ __all__ = [
     "CVLogError",
     "BlownUpError",
     "WriteError",
+    "OutputError",
     "__version__",
 ]

@@ -41,24 +41,8 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .checkpoint import MAGIC as CHECKPOINT_MAGIC
-from .checkpoint import (
-    _HELD,
-    _create_temp,
-    _describe_foreign,
-    _encode_json,
-    _fsync_directory,
-    _reason,
-    _short,
-    _write_all,
-    decode_json,
-)
-from .errors import CVLogError, LockError, ParameterError, WriteError
-
-try:
-    import fcntl
-except ImportError:  # Windows: logs work, but a second writer is not detected
-    fcntl = None
+from ._files import _HELD, AtomicFile, _short, decode_json, describe_foreign, encode_json, lock_open_file, reason, write_all
+from .errors import CVLogError, ParameterError, WriteError
 
 __all__ = ["MAGIC", "FORMAT_VERSION", "HEADER_SIZE", "CVLog", "CVLogWriter", "read_cvlog"]
 
@@ -166,7 +150,7 @@ def read_cvlog(path, *, mmap: bool = False) -> CVLog:
     except FileNotFoundError as exc:
         raise CVLogError(f"CV log {path!r} does not exist") from exc
     except OSError as exc:
-        raise CVLogError(f"could not read CV log {path!r}: {_reason(exc)}") from exc
+        raise CVLogError(f"could not read CV log {path!r}: {reason(exc)}") from exc
     data.flags.writeable = False
     n_partial = size - header.data_offset - n * 8 * m
     return CVLog(path, header.columns, header.units, header.metadata, data, max(n_partial, 0))
@@ -180,11 +164,7 @@ def _read_header(fd: int, path: str) -> _Header:
         raise CVLogError(f"CV log {path!r} is empty (0 bytes)")
     k = min(len(head), len(MAGIC))
     if head[:k] != MAGIC[:k]:
-        if head.startswith(CHECKPOINT_MAGIC):
-            looks = "; it is a gridbias checkpoint (read it with gridbias.checkpoint.read_checkpoint)"
-        else:
-            looks = _describe_foreign(head)
-        raise CVLogError(f"{path!r} is not a gridbias CV log (wrong magic bytes){looks}")
+        raise CVLogError(f"{path!r} is not a gridbias CV log (wrong magic bytes){describe_foreign(head)}")
     if len(head) < HEADER_SIZE:
         raise CVLogError(
             f"CV log {path!r} is truncated: {size} bytes, shorter than the {HEADER_SIZE}-byte header"
@@ -230,7 +210,7 @@ def _check_columns(columns, units) -> None:
         raise ParameterError(f"columns has {len(columns)} names; at most {MAX_COLUMNS} are allowed")
     for name in columns:
         if not isinstance(name, str) or not name:
-            raise ParameterError(f"column names must be non-empty str, got {name!r}")
+            raise ParameterError(f"column names must be non-empty str, got {name!r} in columns {columns!r}")
     seen, repeated = set(), set()
     for name in columns:  # linear in the number of columns
         (repeated if name in seen else seen).add(name)
@@ -244,8 +224,6 @@ def _check_columns(columns, units) -> None:
     for unit in units:
         if not isinstance(unit, str):
             raise ParameterError(f"units must be str (use '' or '1' for dimensionless), got {unit!r}")
-    if not isinstance(units, (list, tuple)):
-        raise ParameterError("units must be a list")
 
 
 def _column_index(columns, name, path) -> int:
@@ -286,8 +264,6 @@ class CVLogWriter:
     ------
     ParameterError
         Bad columns, units or metadata.
-    WriteError
-        The file cannot be created or written (disk full, I/O error, no permission).
     CVLogError
         The existing file is not a CV log, is damaged, or its columns, units or metadata differ (the
         message says which), or it cannot be created or opened.
@@ -320,7 +296,7 @@ class CVLogWriter:
         if metadata is not None:
             if not isinstance(metadata, dict):
                 raise ParameterError(f"metadata must be a dict or None, got {type(metadata).__name__}")
-            metadata = json.loads(_encode_json(metadata, "metadata"))  # as it will read back
+            metadata = json.loads(encode_json(metadata, "metadata"))  # as it will read back
         self._record_size = 8 * len(self.columns)
         self._fd = None
         self.dropped_partial_bytes = 0
@@ -342,7 +318,7 @@ class CVLogWriter:
     def write(self, rows) -> None:
         """Append one row, shape (m,), or several, shape (k, m); values in the columns' units.
 
-        NaN and infinity are stored as they are. Raises ParameterError for the wrong shape and WriteError
+        NaN and infinity are stored as they are. Raises ParameterError for the wrong shape and CVLogError
         if the file cannot be written (the file then keeps exactly its previous records).
         """
         fd = self._require_open()
@@ -360,13 +336,13 @@ class CVLogWriter:
         if array.shape[0] == 0:
             return
         try:
-            _write_all(fd, np.ascontiguousarray(array, dtype=_RECORD_DTYPE))
+            write_all(fd, np.ascontiguousarray(array, dtype=_RECORD_DTYPE))
         except OSError as exc:
             try:
                 os.ftruncate(fd, self._data_offset + self._n_records * self._record_size)
             except OSError:
                 self._close_quietly()  # cannot restore record alignment: refuse further writes
-            raise WriteError(f"could not append to CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
+            raise WriteError(f"could not append to CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
         self._n_records += array.shape[0]
 
     def flush(self) -> None:
@@ -375,7 +351,7 @@ class CVLogWriter:
         try:
             os.fsync(fd)
         except OSError as exc:
-            raise WriteError(f"could not flush CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
+            raise WriteError(f"could not flush CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
 
     def close(self) -> None:
         """Flush and close (idempotent)."""
@@ -425,7 +401,7 @@ class CVLogWriter:
                 os.ftruncate(fd, self._data_offset + first_drop * self._record_size)
                 n_kept = first_drop
         except OSError as exc:
-            raise WriteError(f"could not truncate CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
+            raise WriteError(f"could not truncate CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
         self._n_records = n_kept
         return n - n_kept
 
@@ -457,35 +433,18 @@ class CVLogWriter:
             os.close(fd)
 
     def _header_bytes(self, metadata: dict) -> bytes:
-        text = _encode_json({"columns": list(self.columns), "units": list(self.units), "metadata": metadata},
+        text = encode_json({"columns": list(self.columns), "units": list(self.units), "metadata": metadata},
                             "the CV log header")
         padded = text + b"\x00" * (-len(text) % 8)
         head = MAGIC + struct.pack("<IIQ", FORMAT_VERSION, len(self.columns), len(text))
         return head + hashlib.sha256(head + padded).digest() + padded
 
     def _create(self, metadata: dict) -> None:
-        """Create the file with its header atomically (a crash leaves no file or a complete header)."""
-        tmp = None
-        try:
-            fd, tmp = _create_temp(self.path)
-            try:
-                _write_all(fd, self._header_bytes(metadata))
-                os.fsync(fd)
-            finally:
-                os.close(fd)
-            try:
-                os.link(tmp, self.path)  # unlike a rename, never replaces a log created meanwhile
-            except FileExistsError:
-                pass
-            _fsync_directory(os.path.dirname(os.path.abspath(self.path)))
-        except OSError as exc:
-            raise WriteError(f"could not create CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
-        finally:
-            if tmp is not None:
-                try:
-                    os.unlink(tmp)
-                except FileNotFoundError:
-                    pass
+        """Create the file with its header atomically (a crash leaves no file or a complete header).
+
+        Unlike a rename, the final link never replaces a log another writer created meanwhile."""
+        with AtomicFile(self.path, what="CV log", verb="create", replace=False) as f:
+            f.write(self._header_bytes(metadata))
 
     def _open(self, metadata) -> None:
         """Open the existing file for appending, lock it, check its header and cut a partial record."""
@@ -493,7 +452,7 @@ class CVLogWriter:
             try:
                 fd = os.open(self.path, os.O_RDWR | os.O_APPEND)
             except OSError as exc:
-                raise WriteError(f"could not open CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
+                raise WriteError(f"could not open CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
             try:
                 _lock(fd, self.path)
                 same = os.path.samestat(os.fstat(fd), os.stat(self.path))
@@ -514,7 +473,7 @@ class CVLogWriter:
                 os.ftruncate(fd, header.data_offset + body - partial)
         except OSError as exc:
             os.close(fd)
-            raise WriteError(f"could not open CV log {self.path!r}: {_reason(exc)}", path=self.path) from exc
+            raise WriteError(f"could not open CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
         except BaseException:
             os.close(fd)
             raise
@@ -538,37 +497,36 @@ class CVLogWriter:
             given = {k: metadata.get(k, "<missing>") for k in keys}
             differences.append(f"metadata: the file has {in_file}, given {given}")
         if differences:
+            theirs = header.metadata.get("run_id")
+            if metadata is not None and theirs is not None and metadata.get("run_id") not in (None, theirs):
+                raise CVLogError(
+                    f"CV log {self.path!r} belongs to another run (run id {theirs} in the file, "
+                    f"{metadata['run_id']} here): to continue that run, restore it first (link.restore); "
+                    "otherwise use a new log"
+                )
             raise CVLogError(
                 f"CV log {self.path!r} exists with a different header ({'; '.join(differences)}); "
                 "use another path or the same columns, units and metadata"
             )
 
     def _rewrite_keeping(self, records: np.ndarray, j: int, value: float) -> int:
-        """Write the records with column j <= value (or NaN) to a new file that replaces the log."""
+        """Write the records with column j <= value (or NaN) to a new file that replaces the log.
+
+        The new file is locked before it is put in place, so no other writer can claim it in between."""
         header = os.pread(self._fd, self._data_offset, 0)
-        new_fd, tmp = _create_temp(self.path, os.O_RDWR | os.O_APPEND)
         n_kept = 0
-        try:
-            os.fchmod(new_fd, stat.S_IMODE(os.fstat(self._fd).st_mode))
-            _lock(new_fd, tmp)
-            _write_all(new_fd, header)
+        with AtomicFile(self.path, what="CV log", verb="truncate",
+                        flags=os.O_RDWR | os.O_APPEND, keep_open=True) as f:
+            os.fchmod(f.fd, stat.S_IMODE(os.fstat(self._fd).st_mode))
+            _lock(f.fd, self.path)
+            f.write(header)
             for start in range(0, records.shape[0], _SCAN_ROWS):
                 block = np.asarray(records[start:start + _SCAN_ROWS])
                 kept = np.ascontiguousarray(block[~(block[:, j] > value)])
-                _write_all(new_fd, kept)
+                f.write(kept)
                 n_kept += kept.shape[0]
-            os.fsync(new_fd)
-            os.replace(tmp, self.path)
-            tmp = None
-            _fsync_directory(os.path.dirname(os.path.abspath(self.path)))
-        except BaseException:
-            os.close(new_fd)
-            raise
-        finally:
-            if tmp is not None:
-                os.unlink(tmp)
-        os.close(self._fd)  # the new file is locked through new_fd already
-        self._fd = new_fd
+        os.close(self._fd)  # the new file is locked through its own descriptor already
+        self._fd = f.fd  # (registered in _HELD already, as this writer)
         return n_kept
 
 
@@ -577,11 +535,5 @@ _MISSING = object()
 
 def _lock(fd: int, path: str) -> None:
     """Hold an exclusive flock on the open log; LockError if another writer holds it."""
-    if fcntl is None:
-        return
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        raise LockError(
-            f"CV log {path!r} is already open for writing by another writer (in this or another process)"
-        ) from None
+    lock_open_file(fd, f"CV log {path!r} is already open for writing by another writer (in this or another "
+                       "process)")

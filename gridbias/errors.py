@@ -9,6 +9,7 @@ __all__ = [
     "CVLogError",
     "BlownUpError",
     "WriteError",
+    "OutputError",
 ]
 
 
@@ -62,3 +63,7 @@ class WriteError(GridBiasError, RuntimeError):
         self.last_checkpoint = last_checkpoint
         self.last_checkpoint_step = last_checkpoint_step
         self.bias = bias
+
+
+class OutputError(WriteError):
+    """A result file (a table, a figure, a report) that could not be written; an older file there is intact."""
