@@ -11,6 +11,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import errno
 import json
 import math
@@ -27,7 +28,7 @@ try:
 except ImportError:  # Windows: files work; CheckpointLock raises LockError, CV logs skip their lock
     fcntl = None
 
-__all__ = ["encode_json", "decode_json", "describe_foreign", "write_atomically", "AtomicFile", "create_temp", "write_all",
+__all__ = ["encode_json", "decode_json", "describe_foreign", "new_folders", "same_file", "write_atomically", "AtomicFile", "create_temp", "write_all",
            "fsync_folder", "fsync_path", "reason", "CheckpointLock", "lock_open_file"]
 
 _MAX_JSON_DEPTH = 100
@@ -228,6 +229,42 @@ def write_atomically(path, chunks, *, what: str, error: type = WriteError, repla
     with AtomicFile(path, what=what, error=error, replace=replace) as f:
         for chunk in chunks:
             f.write(chunk)
+
+
+@contextlib.contextmanager
+def new_folders(folder: str):
+    """Make ``folder`` and its missing parents; if the block raises, remove those it made that are empty.
+
+    So a command that fails leaves no empty folders behind. WriteError when a folder cannot be made.
+    """
+    made = []
+    path = os.path.abspath(folder)
+    while not os.path.exists(path):
+        made.append(path)
+        path = os.path.dirname(path)
+    try:
+        os.makedirs(folder, exist_ok=True)
+    except OSError as exc:
+        raise WriteError(f"could not create the folder {folder!r}: {reason(exc)}", path=folder) from exc
+    try:
+        yield folder
+    except BaseException:
+        for path in made:  # deepest first
+            try:
+                os.rmdir(path)
+            except OSError:
+                break  # not empty (or gone): keep it and everything above it
+        raise
+
+
+def same_file(a, b) -> bool:
+    """True when paths ``a`` and ``b`` name one file (same resolved path, or same device and inode)."""
+    if os.path.realpath(a) == os.path.realpath(b):
+        return True
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return False
 
 
 def create_temp(path: str, flags: int = os.O_WRONLY):

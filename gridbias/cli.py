@@ -80,10 +80,17 @@ def _fmt(x, digits=4) -> str:
 
 
 # -------------------------------------------------------------------------------------------- outputs
-def _check_outputs(paths, allowed, option):
-    """Validate output paths up front (extension, existing folder); return [(path, format)]."""
+def _check_outputs(paths, allowed, option, inputs=()):
+    """Validate output paths up front (extension, existing folder, never an input file nor twice the same
+    file); return [(path, format)]."""
+    from ._files import same_file
+
     checked = []
     for path in paths:
+        for other in [*inputs, *(p for p, _ in checked)]:
+            if same_file(path, other):
+                raise CommandError(f"{option} {path!r} is the same file as {other!r}: a command never writes over "
+                                   "a file it reads or writes twice; choose another output name")
         ext = os.path.splitext(path)[1].lower().lstrip(".")
         if ext not in allowed:
             raise CommandError(f"{option} {path!r}: the file type is taken from the extension, which must be "
@@ -214,7 +221,7 @@ def _cmd_inspect(args) -> int:
 def _cmd_export(args) -> int:
     from . import analysis
 
-    outputs = _check_outputs(args.outputs, TABLE_FORMATS + FIGURE_FORMATS, "output")
+    outputs = _check_outputs(args.outputs, TABLE_FORMATS + FIGURE_FORMATS, "output", [args.checkpoint])
     run = load_run(args.checkpoint)
     bias = run.bias
     if bias.n_hills == 0:
@@ -281,7 +288,8 @@ def _edges(values, column, dihedral, bins, given, show_scale):
 def _cmd_reweight(args) -> int:
     from . import analysis
 
-    outputs = _check_outputs(args.outputs or [], TABLE_FORMATS + FIGURE_FORMATS, "--output")
+    outputs = _check_outputs(args.outputs or [], TABLE_FORMATS + FIGURE_FORMATS, "--output",
+                             [args.checkpoint, args.log])
     if len(args.along) > 2:
         raise CommandError(f"--along takes one or two columns, got {len(args.along)}: "
                            f"{', '.join(args.along)}")
@@ -291,6 +299,9 @@ def _cmd_reweight(args) -> int:
         bins = bins * d
     if len(bins) != d or min(bins) < 2:
         raise CommandError(f"--bins: give one number >= 2, or one per --along column ({d}), got {args.bins}")
+    if math.prod(bins) > MAX_BINS_TOTAL:
+        raise CommandError(f"--bins {' '.join(map(str, bins))} gives {math.prod(bins):,} bins; at most "
+                           f"{MAX_BINS_TOTAL:,} in all")
     ranges = args.range or []
     if ranges and len(ranges) != d:
         raise CommandError(f"--range: give it once per --along column ({d}), in order; got {len(ranges)}")
@@ -375,6 +386,22 @@ def _option_type(convert, allowed, expected, malformed):
 _fraction = _option_type(float, lambda x: 0 < x <= 1, "a number in (0, 1]", "a number between 0 and 1")
 _positive = _option_type(float, lambda x: math.isfinite(x) and x > 0, "a positive number", "a positive number")
 _count = _option_type(int, lambda n: n >= 1, "a whole number >= 1", "a whole number")
+_finite = _option_type(float, math.isfinite, "a finite number", "a number")
+_burn_in = _option_type(float, lambda x: 0 <= x < 1, "a number in [0, 1)", "a number between 0 and 1")
+
+
+def _count_upto(limit, why):
+    """A whole number in 1..limit (options that size arrays or work: a typo must not exhaust the machine)."""
+    return _option_type(int, lambda n: 1 <= n <= limit, f"a whole number in 1..{limit:,} ({why})",
+                        "a whole number")
+
+
+#: Upper bounds of the options that size arrays or work (each far above any useful value).
+MAX_BINS = 5_000  # per column of a reweighted histogram
+MAX_BINS_TOTAL = 4_000_000  # bins of a 2-D histogram in all (a few hundred MB of work arrays)
+MAX_POINTS = 1_000  # moments of the run at which basin differences are computed
+MAX_LENGTH_NS = 1_000.0  # demo length: 1 us is 500 million steps, days on any machine
+MAX_SEED = 2**31 - 1  # OpenMM's random seeds are 32-bit signed integers
 
 
 def _names(text):
@@ -432,12 +459,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quick", action="store_true", help="a shorter run (about a fifth of the length)")
     p.add_argument("--out", default="gridbias-demo", metavar="DIR",
                    help="results folder (default ./gridbias-demo); each mode writes its own subfolder")
-    p.add_argument("--length", type=_positive, metavar="NS",
+    p.add_argument("--length", metavar="NS",
+                   type=_option_type(float, lambda x: 0 < x <= MAX_LENGTH_NS,
+                                     f"a number of ns in (0, {MAX_LENGTH_NS:g}]", "a number"),
                    help="simulated time in ns, instead of the mode's default (e.g. 0.002 for a smoke test)")
     p.add_argument("--platform", default="auto",
                    choices=("auto", "Reference", "CPU", "CUDA", "OpenCL", "HIP"),
                    help="OpenMM platform; 'auto' times the available ones briefly and takes the fastest")
-    p.add_argument("--seed", type=_count, default=2024, metavar="N",
+    p.add_argument("--seed", type=_count_upto(MAX_SEED, "a 32-bit seed"), default=2024, metavar="N",
                    help="random seed for velocities and the thermostat (default 2024)")
     p.add_argument("--fresh", action="store_true",
                    help="discard this mode's earlier results in --out and start again")
@@ -468,7 +497,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-height", type=_fraction, default=0.05, metavar="FRACTION",
                    help="well-tempered: recent hills must be at most this fraction of the initial height "
                         "(default 0.05)")
-    p.add_argument("--points", type=_count, default=40, metavar="N",
+    p.add_argument("--points", type=_count_upto(MAX_POINTS, "each one is a replay of the hills"), default=40,
+                   metavar="N",
                    help="moments of the run at which the basin differences are computed (default 40)")
     p.set_defaults(handler=_cmd_inspect)
 
@@ -485,7 +515,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("outputs", nargs="+", metavar="OUTPUT",
                    help="files to write: .csv, .npz, .png, .svg, .pdf")
     when = p.add_mutually_exclusive_group()
-    when.add_argument("--time", type=float, metavar="PS",
+    when.add_argument("--time", type=_finite, metavar="PS",
                       help="the surface as it was at this simulated time, ps (default: the end)")
     when.add_argument("--hills", type=_count, metavar="N", help="the surface from the first N hills")
     _add_angle_unit(p)
@@ -505,14 +535,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("log", metavar="CVLOG", help="the run's CV log (.gbl)")
     p.add_argument("--along", nargs="+", required=True, metavar="COLUMN",
                    help="one or two log columns to compute the free energy along")
-    p.add_argument("--bins", type=_count, nargs="+", metavar="N",
+    p.add_argument("--bins", type=_count_upto(MAX_BINS, "bins per column"), nargs="+", metavar="N",
                    help="bins per column (default 60 for one column, 36 x 36 for two)")
-    p.add_argument("--range", type=float, nargs=2, action="append", metavar=("LOW", "HIGH"),
+    p.add_argument("--range", type=_finite, nargs=2, action="append", metavar=("LOW", "HIGH"),
                    help="histogram range of a column, once per column in --along order (default: -180..180 "
                         "deg for a dihedral CV, else the data's range)")
     p.add_argument("--method", choices=("offset", "final"), default="offset",
                    help="'offset': c(t) weights (default); 'final': final-bias weights")
-    p.add_argument("--burn-in", type=float, default=0.5, metavar="FRACTION",
+    p.add_argument("--burn-in", type=_burn_in, default=0.5, metavar="FRACTION",
                    help="'final' only: fraction of the run left out at its start (default 0.5)")
     p.add_argument("--output", dest="outputs", nargs="+", metavar="FILE",
                    help="files to write: .csv, .npz, .png, .svg, .pdf")
