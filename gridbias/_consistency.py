@@ -47,12 +47,12 @@ def replay_cost(bias) -> int:
 
 
 def table_problem(bias, coef: np.ndarray) -> str:
-    """'' if the table `coef` (the layout of ``GridBias.kernel_args()[0]``) equals the replay of `bias`'s
+    """'' if the table `coef` (the layout of ``GridBias._kernel_args()[0]``) equals the replay of `bias`'s
     hill history to rounding, else one phrase saying where it does not."""
     heights = np.asarray(bias.history.heights)
     tol = _tolerance(heights)
     if replay_cost(bias) <= FULL_REPLAY_BUDGET:
-        replayed = bias.rebuilt().kernel_args()[0]
+        replayed = bias.rebuilt()._kernel_args()[0]
         worst = np.abs(replayed - coef)
         index = np.unravel_index(int(np.argmax(worst)), worst.shape)
         if worst[index] > tol:
@@ -71,9 +71,7 @@ def _sample_nodes(values: np.ndarray) -> list:
 
 
 def _subset_problem(bias, coef, tol) -> str:
-    grid = bias.grid
-    d = bias.ndim
-    shape = grid.shape
+    shape = bias.grid.shape
     values = coef[0].reshape(shape)
     nodes = _sample_nodes(values)
     index_kd = np.array(np.unravel_index(nodes, shape)).T  # (k, d) node indices

@@ -28,7 +28,8 @@ try:
 except ImportError:  # Windows: files work; CheckpointLock raises LockError, CV logs skip their lock
     fcntl = None
 
-__all__ = ["encode_json", "decode_json", "describe_foreign", "new_folders", "same_file", "write_atomically", "AtomicFile", "create_temp", "write_all",
+__all__ = ["encode_json", "decode_json", "describe_foreign", "new_folders", "same_file", "write_atomically",
+           "AtomicFile", "create_temp", "write_all",
            "fsync_folder", "fsync_path", "reason", "CheckpointLock", "lock_open_file"]
 
 _MAX_JSON_DEPTH = 100
@@ -325,7 +326,8 @@ class CheckpointLock:
     host name and start time as JSON. The kernel drops the flock when the holder exits or is killed, so a
     lock file left by a dead process is taken over silently (its old content is kept in
     `previous_holder`). Children the holder forks do not keep the lock: they close their copy at the fork,
-    so the lock ends with the holder even while its children live on. While the lock is held, stray temporary files of `path` left by killed writers
+    so the lock ends with the holder even while its children live on. While the lock is held, stray
+    temporary files of `path` left by killed writers
     (``<path>.tmp-<16 hex digits>``) are removed.
 
     Parameters

@@ -8,10 +8,11 @@ import warnings
 import numpy as np
 
 from . import _kernels
+from ._bias_state import STATE_KIND, STATE_VERSION, checked_bias
+from ._identity import new_run_id
 from .errors import CheckpointError, GridBiasError, GridError, ParameterError
 from .grid import Grid
 from .history import HillHistory
-from ._identity import check_run_id, new_run_id
 from .walls import Wall
 
 __all__ = ["GridBias", "KB", "DEFAULT_CUTOFF"]
@@ -22,34 +23,8 @@ KB = 0.00831446261815324
 #: Hill footprint radius in widths: exp(-c**2 / 2) = 1e-6, so the truncated part is below 1e-6 of the height.
 DEFAULT_CUTOFF = math.sqrt(2.0 * math.log(1e6))
 
-_STATE_KIND = "gridbias.bias"
-_STATE_VERSION = 1
-_STATE_FIELDS = {"kind", "version", "grid", "sigma", "height", "temperature", "bias_factor", "cutoff", "walls",
-                 "n_hills", "n_outside", "run_id", "walkers"}
-_STATE_ARRAYS = {"coefficients", "hill_centers", "hill_heights", "hill_times"}
-_MAX_COUNT = 2**53  # integers in a state file beyond this cannot be counts of anything held in memory
-
-
-def _is(value, kind) -> bool:
-    """JSON type check: bool is not a number, and an int is a float."""
-    if isinstance(value, bool):
-        return kind is bool
-    if kind is float:
-        return isinstance(value, (int, float))
-    return isinstance(value, kind)
-
-
-def _field(meta, key, kind, low=None):
-    """A number from a state's metadata, checked for type, finiteness and lower bound."""
-    value = meta[key]
-    if not _is(value, kind) or (kind is float and not math.isfinite(value)):
-        raise CheckpointError(f"bias state {key} must be {'an integer' if kind is int else 'a number'}, got "
-                              f"{_show(value)}")
-    if (low is not None and value < low) or (kind is int and value > _MAX_COUNT):
-        raise CheckpointError(f"bias state {key} = {_show(value)} is out of range")
-    return value
-
-
+_STATE_KIND = STATE_KIND
+_STATE_VERSION = STATE_VERSION
 def _show(value) -> str:
     text = repr(value)
     return text if len(text) <= 80 else text[:77] + "..."
@@ -296,11 +271,11 @@ class GridBias:
                 "Put walls about 3 sigma inside the grid edges.", stacklevel=3)
 
     # -- deposition ---------------------------------------------------------------------------
-    def kernel_args(self):
+    def _kernel_args(self):
         """(coef4, ndim, lower3, spacing3, bins3, periodic3) for ``gridbias._kernels.eval_point``."""
         return (self._coef, self.ndim, self._lower3, self._spacing3, self._bins3, self._periodic3)
 
-    def wall_args(self):
+    def _wall_args(self):
         """(cv, bound, k, sign, power) arrays for ``gridbias._kernels.wall_point``."""
         return (self._wall_cv, self._wall_bound, self._wall_k, self._wall_sign, self._wall_power)
 
@@ -311,7 +286,7 @@ class GridBias:
         s = self._point(s)
         if not self._grid.contains(s):
             return 0.0
-        return _kernels.hill_height(*self.kernel_args(), s, self._height, self._wt_inverse)
+        return _kernels.hill_height(*self._kernel_args(), s, self._height, self._wt_inverse)
 
     def deposit(self, s, *, time=None) -> float:
         """Deposit one hill at the CV point s (d,). Returns the height used, kJ/mol.
@@ -489,85 +464,11 @@ class GridBias:
         checked for very large histories). Raises CheckpointError naming the first problem.
         """
         try:
-            return cls._checked_from_state(meta, arrays)
+            return checked_bias(cls, meta, arrays)
         except CheckpointError:
             raise
         except (GridBiasError, KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
             raise CheckpointError(f"bias state is invalid: {exc}") from exc
-
-    @classmethod
-    def _checked_from_state(cls, meta, arrays) -> "GridBias":
-        from ._consistency import table_problem
-
-        if not isinstance(meta, dict) or not isinstance(arrays, dict):
-            raise CheckpointError("bias state must be a (meta dict, arrays dict) pair")
-        if meta.get("kind") != _STATE_KIND:
-            raise CheckpointError(f"not a gridbias bias state (kind {_show(meta.get('kind'))})")
-        version = _field(meta, "version", int, low=1)
-        if version > _STATE_VERSION:
-            raise CheckpointError(f"bias state version {version} is newer than this gridbias reads "
-                                  f"({_STATE_VERSION}); upgrade gridbias")
-        unknown = set(meta) - _STATE_FIELDS
-        if unknown:
-            raise CheckpointError(f"bias state has unknown fields {sorted(unknown)[:5]}")
-        spec = meta["grid"]
-        if not isinstance(spec, dict) or set(spec) != {"lower", "upper", "bins", "periodic"}:
-            raise CheckpointError("bias state grid must hold exactly lower, upper, bins and periodic")
-        for key, kind in (("lower", float), ("upper", float), ("bins", int), ("periodic", bool)):
-            if not isinstance(spec[key], list) or not all(_is(x, kind) for x in spec[key]):
-                raise CheckpointError(f"bias state grid {key} must be a list of {kind.__name__}")
-        grid = Grid.from_dict(spec)  # GridError (memory budget included) before anything is allocated
-        d = grid.ndim
-        sigma = meta["sigma"]
-        if not isinstance(sigma, list) or len(sigma) != d or not all(_is(x, float) for x in sigma):
-            raise CheckpointError(f"bias state sigma must be a list of {d} numbers")
-        for key in ("height", "temperature", "cutoff"):
-            _field(meta, key, float)
-        if meta["bias_factor"] is not None:
-            _field(meta, "bias_factor", float)
-        walls = meta["walls"]
-        if not isinstance(walls, list) or len(walls) > 64:
-            raise CheckpointError("bias state walls must be a list of at most 64 walls")
-        for w in walls:
-            if not isinstance(w, dict) or set(w) != {"cv", "bound", "k", "side", "power"} or not _is(w["cv"], int):
-                raise CheckpointError(f"bias state wall {_show(w)} is not a wall description")
-        n = _field(meta, "n_hills", int, low=0)
-        n_outside = _field(meta, "n_outside", int, low=0)
-        run_id = check_run_id(meta["run_id"], "bias state run_id") if "run_id" in meta else None
-        if set(arrays) != _STATE_ARRAYS:
-            raise CheckpointError(f"bias state arrays are {sorted(arrays)[:6]}, expected {sorted(_STATE_ARRAYS)}")
-        shape3 = tuple(grid.shape) + (1,) * (3 - d)
-        expected = {"coefficients": (1 << d,) + shape3, "hill_centers": (n, d), "hill_heights": (n,),
-                    "hill_times": (n,)}
-        for name, shape in expected.items():
-            a = arrays[name]
-            if not isinstance(a, np.ndarray) or a.dtype != np.float64 or a.shape != shape:
-                got = (a.shape, a.dtype) if isinstance(a, np.ndarray) else type(a).__name__
-                raise CheckpointError(f"bias state array {name} is {got}; n_hills={n} and the grid need "
-                                      f"{shape} float64")
-        coef, centers = arrays["coefficients"], arrays["hill_centers"]
-        heights, times = arrays["hill_heights"], arrays["hill_times"]
-        if not np.isfinite(coef).all():
-            raise CheckpointError("coefficients hold NaN or infinite values")
-        if not np.isfinite(centers).all() or not grid.contains(centers).all():
-            raise CheckpointError("hill centres must be finite and inside the grid")
-        if not (np.isfinite(heights).all() and (heights >= 0).all()):
-            raise CheckpointError("hill heights must be finite and >= 0 kJ/mol")
-        if np.isinf(times).any():
-            raise CheckpointError("hill times must be finite or NaN (ps)")
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            bias = cls(grid, sigma, meta["height"], meta["temperature"], meta["bias_factor"],
-                       [Wall.from_dict(w) for w in walls], cutoff=meta["cutoff"])
-        bias._history.extend(centers, heights, times)
-        bias._n_outside = n_outside
-        problem = table_problem(bias, coef)
-        if problem:
-            raise CheckpointError(f"bias state contradicts itself: {problem}")
-        bias._coef[...] = coef
-        if run_id is not None:
-            bias._run_id = run_id
-        return bias
 
     def describe_difference(self, other: "GridBias") -> str:
         """One sentence naming the first parameter in which ``other`` differs ('' when all agree).
@@ -619,18 +520,11 @@ class GridBias:
         """Read a bias written by ``save``; verifies format, version and checksum.
 
         A run checkpoint of the OpenMM adapter holds more than a bias: ``gridbias.runs.load_run`` opens
-        that one (and this kind too).
+        that one (and this kind too); the error for one says so.
         """
         from .checkpoint import read_checkpoint
-        from .runs import CHECKPOINT_KIND
 
-        try:
-            meta, arrays = read_checkpoint(path, kind=_STATE_KIND)
-        except CheckpointError as exc:
-            if f"holds kind {CHECKPOINT_KIND!r}" in str(exc):
-                raise CheckpointError(f"{exc}: it is a run checkpoint of the OpenMM adapter; open it with "
-                                      "gridbias.runs.load_run(path), whose .bias is the GridBias") from exc
-            raise
+        meta, arrays = read_checkpoint(path, kind=_STATE_KIND)
         return cls.from_state(meta, arrays)
 
     def __repr__(self):

@@ -35,7 +35,6 @@ from __future__ import annotations
 
 import hashlib
 import io
-import json
 import math
 import os
 import re
@@ -69,6 +68,13 @@ _ARRAY_KINDS = "biufc"  # bool, signed, unsigned, float, complex
 _ZIP_DATE = (1980, 1, 1, 0, 0, 0)  # fixed member timestamps: same content, same bytes
 MAX_MEMBERS = 1024  # arrays in one checkpoint (the largest written holds about 12)
 _MAX_NPY_HEADER = 10_000  # bytes of one .npy header (ours are under 200)
+# What opens each kind gridbias writes, for the message of a reader that expected another kind.
+_READERS = {
+    "gridbias.bias": "; it is a bias checkpoint: open it with gridbias.GridBias.load(path) or "
+                     "gridbias.runs.load_run(path)",
+    "gridbias.openmm-run": "; it is a run checkpoint of the OpenMM adapter: open it with "
+                           "gridbias.runs.load_run(path), whose .bias is the GridBias",
+}
 
 # ---------------------------------------------------------------------------------------------- write/read
 def write_checkpoint(path, meta: dict, arrays: dict, *, kind: str) -> None:
@@ -202,7 +208,8 @@ def read_checkpoint(path, *, kind: str | None = None) -> tuple[dict, dict]:
             kind_len = _check_header(path, head, size)
             stored_kind = _read_kind(path, f.read(kind_len), kind_len)
             if kind is not None and stored_kind != kind:
-                raise CheckpointError(f"checkpoint {path!r} holds kind {stored_kind!r}, expected {kind!r}")
+                raise CheckpointError(f"checkpoint {path!r} holds kind {stored_kind!r}, expected {kind!r}"
+                                      f"{_READERS.get(stored_kind, '')}")
             payload = f.read()
     except FileNotFoundError as exc:
         raise CheckpointError(f"checkpoint file {path!r} does not exist") from exc

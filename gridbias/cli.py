@@ -81,8 +81,7 @@ def _fmt(x, digits=4) -> str:
 
 # -------------------------------------------------------------------------------------------- outputs
 def _check_outputs(paths, allowed, option, inputs=()):
-    """Validate output paths up front (extension, existing folder, never an input file nor twice the same
-    file); return [(path, format)]."""
+    """Check outputs up front (extension, folder, never an input or twice one file); [(path, format)]."""
     from ._files import same_file
 
     checked = []
@@ -390,18 +389,13 @@ _finite = _option_type(float, math.isfinite, "a finite number", "a number")
 _burn_in = _option_type(float, lambda x: 0 <= x < 1, "a number in [0, 1)", "a number between 0 and 1")
 
 
+# Bounds of the options that size arrays or work, far above any useful value (a typo must not exhaust the
+# machine): bins per column and in all, moments replayed, demo ns (1 us: days anywhere), OpenMM's 32-bit seeds.
+MAX_BINS, MAX_BINS_TOTAL, MAX_POINTS, MAX_LENGTH_NS, MAX_SEED = 5_000, 4_000_000, 1_000, 1_000.0, 2**31 - 1
+
+
 def _count_upto(limit, why):
-    """A whole number in 1..limit (options that size arrays or work: a typo must not exhaust the machine)."""
-    return _option_type(int, lambda n: 1 <= n <= limit, f"a whole number in 1..{limit:,} ({why})",
-                        "a whole number")
-
-
-#: Upper bounds of the options that size arrays or work (each far above any useful value).
-MAX_BINS = 5_000  # per column of a reweighted histogram
-MAX_BINS_TOTAL = 4_000_000  # bins of a 2-D histogram in all (a few hundred MB of work arrays)
-MAX_POINTS = 1_000  # moments of the run at which basin differences are computed
-MAX_LENGTH_NS = 1_000.0  # demo length: 1 us is 500 million steps, days on any machine
-MAX_SEED = 2**31 - 1  # OpenMM's random seeds are 32-bit signed integers
+    return _option_type(int, lambda n: 1 <= n <= limit, f"a whole number in 1..{limit:,} ({why})", "a whole number")
 
 
 def _names(text):

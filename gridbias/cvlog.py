@@ -41,7 +41,17 @@ from typing import NamedTuple
 
 import numpy as np
 
-from ._files import _HELD, AtomicFile, _short, decode_json, describe_foreign, encode_json, lock_open_file, reason, write_all
+from ._files import (
+    _HELD,
+    AtomicFile,
+    _short,
+    decode_json,
+    describe_foreign,
+    encode_json,
+    lock_open_file,
+    reason,
+    write_all,
+)
 from .errors import CVLogError, ParameterError, WriteError
 
 __all__ = ["MAGIC", "FORMAT_VERSION", "HEADER_SIZE", "CVLog", "CVLogWriter", "read_cvlog"]
@@ -195,9 +205,6 @@ def _read_header(fd: int, path: str) -> _Header:
         _check_columns(columns, units)
         if len(columns) != m or not isinstance(metadata, dict) or rest[text_len:].strip(b"\x00"):
             raise ValueError("inconsistent header fields")
-        from ._identity import check_log_metadata
-
-        check_log_metadata(metadata)
     except (ValueError, KeyError, TypeError) as exc:  # ParameterError is a ValueError
         raise CVLogError(f"CV log {path!r} has a damaged header ({type(exc).__name__}: {_short(exc)})") from exc
     return _Header(tuple(columns), tuple(units), metadata, data_offset)

@@ -356,11 +356,17 @@ def read_log(path, *, min_records: int = 4):
     Raises
     ------
     CVLogError
-        Missing, damaged or foreign file, or fewer than ``min_records`` complete records.
+        Missing, damaged or foreign file, metadata gridbias wrote that is impossible (a run id, temperature,
+        grid or CVs of the wrong type or range), or fewer than ``min_records`` complete records.
     """
+    from ._identity import check_log_metadata
     from .cvlog import read_cvlog
 
     log = read_cvlog(path)
+    try:
+        check_log_metadata(log.metadata)
+    except ValueError as exc:
+        raise CVLogError(f"CV log {os.fspath(path)!r} has impossible metadata: {exc}") from exc
     if log.n_records < min_records:
         raise CVLogError(f"CV log {os.fspath(path)!r} holds {log.n_records} complete records; at least "
                          f"{min_records} are needed")
@@ -386,8 +392,12 @@ def check_pair(run: Run, log) -> None:
     Compared where both files record them: the run id, the CVs, the grid, the temperature and the bias
     factor. Files from before run ids are still compared on everything else.
     """
-    from ._identity import describe_mismatch
+    from ._identity import check_log_metadata, describe_mismatch
 
+    try:
+        check_log_metadata(log.metadata)
+    except ValueError as exc:
+        raise CVLogError(f"CV log {log.path!r} has impossible metadata: {exc}") from exc
     b = run.bias
     facts = {"run_id": run.run_id, "cvs": None if run.cvs is None else list(run.cvs), "grid": b.grid,
              "temperature": b.temperature, "bias_factor": b.bias_factor}
