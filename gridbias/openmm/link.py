@@ -470,7 +470,7 @@ class BiasReporter:
 
     def _write_checkpoint(self, simulation, step):
         """Flush the CV log, then write the checkpoint, each under the write-failure policy."""
-        if self._writer is not None:
+        if self._writer is not None and not self._unwritten_rows:  # rows still held: the append counts
             self._attempt(self.log, step, self._writer.flush)
         if self._attempt(self.checkpoint, step, lambda: self._link.save(simulation, self.checkpoint)):
             self.last_checkpoint_step = step
