@@ -497,6 +497,8 @@ class CVLogWriter:
             differences.append(f"columns: the file has {list(header.columns)}, given {list(self.columns)}")
         elif header.units != self.units:
             differences.append(f"units: the file has {list(header.units)}, given {list(self.units)}")
+        if metadata is not None and "run_id" not in header.metadata:  # a log from before run ids
+            metadata = {k: v for k, v in metadata.items() if k != "run_id"}
         if metadata is not None and metadata != header.metadata:
             keys = sorted(k for k in set(metadata) | set(header.metadata)
                           if metadata.get(k, _MISSING) != header.metadata.get(k, _MISSING))

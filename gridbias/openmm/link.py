@@ -14,6 +14,7 @@ import weakref
 
 import numpy as np
 
+from .._consistency import FULL_REPLAY_BUDGET, replay_cost
 from ..bias import GridBias
 from ..errors import BlownUpError, CheckpointError, ParameterError, WriteError
 from ..runs import RunCheckpoint, read_run_checkpoint, write_run_checkpoint
@@ -227,6 +228,11 @@ class BiasLink:
         if folded.shape != tuple(bias.grid.shape) or not 0 <= n_folded <= bias.n_hills:
             raise CheckpointError(f"{path}: engine table of shape {folded.shape} / n_folded={n_folded} does not "
                                   f"fit the bias (grid shape {bias.grid.shape}, {bias.n_hills} hills)")
+        if replay_cost(bias) * n_folded <= FULL_REPLAY_BUDGET * max(bias.n_hills, 1):
+            worst = float(np.max(np.abs(bias.rebuilt(n_folded).values - folded), initial=0.0))
+            if worst > 1e-9 * max(1.0, float(np.sum(bias.history.heights[:n_folded]))):
+                raise CheckpointError(f"{path}: the engine table differs by {worst:.3g} kJ/mol from the replay of "
+                                      f"its {n_folded} folded hills: the file contradicts itself")
         platform = context.getPlatform().getName()
         if checkpoint.platform == platform:
             try:

@@ -191,7 +191,8 @@ def test_failed_checkpoint_is_logged_and_retried(tmp_path, monkeypatch, caplog):
     message = caplog.records[-1].getMessage()
     assert caplog.records[-1].levelname == "ERROR"
     for part in (str(ckpt), "at step 300", "No space left on device", "ENOSPC", "failure 1 of at most 3",
-                 "tries again when the next write is due", f"the last good checkpoint is {str(ckpt)!r} of step 200", "keeps all 15 hills"):
+                 "tries again when the next write is due", f"the last good checkpoint is {str(ckpt)!r} of step 200",
+                 "keeps all 15 hills"):
         assert part in message, (part, message)
     assert link.bias.n_hills == 15
     sim.step(100)  # the next checkpoint is written and holds every hill
@@ -510,7 +511,8 @@ def _rewritten(raw, tmp_path, change):
 
 CRAFTED = {
     "grid values missing": (lambda m, a: a.pop("bias.coefficients"), r"arrays are .*expected \['bias.coefficients'"),
-    "engine table missing": (lambda m, a: a.pop("engine.folded_values"), r"arrays are .*expected .*'engine.folded_values'"),
+    "engine table missing": (lambda m, a: a.pop("engine.folded_values"),
+                             r"arrays are .*expected .*'engine.folded_values'"),
     "grid values reshaped": (lambda m, a: a.update({"bias.coefficients": np.zeros(7)}),
                              r"array coefficients is \(\(7,\), dtype\('float64'\)\)"),
     "NaN in the grid": (lambda m, a: a["bias.coefficients"].__setitem__((0, 3, 3, 0), np.nan),

@@ -21,8 +21,9 @@ from openmm import app, unit  # noqa: E402
 import gridbias as gb  # noqa: E402
 import gridbias.cvlog as gbl  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
+from gridbias.checkpoint import read_checkpoint, write_checkpoint  # noqa: E402
 from gridbias.cvlog import read_cvlog  # noqa: E402
-from gridbias.runs import read_run_checkpoint  # noqa: E402
+from gridbias.runs import CHECKPOINT_KIND, read_run_checkpoint  # noqa: E402
 
 pytestmark = [pytest.mark.openmm, pytest.mark.filterwarnings("ignore:axis .* coarser than sigma/2")]
 
@@ -156,3 +157,57 @@ def test_absurd_velocities_are_a_blow_up(tmp_path):
     with pytest.raises(gb.BlownUpError, match="a velocity is 5e\\+04 nm/ps"):
         link.save(sim, tmp_path / "run.gbz")
     assert not (tmp_path / "run.gbz").exists()
+
+
+def test_a_refused_adapter_call_changes_nothing(tmp_path):
+    link, sim = make_run()
+    link.deposit(sim)
+    before = link.bias.to_state()
+    for s, time in [(["x"], None), ([np.nan], None), ([0.1, 0.2], None), (None, "soon"), (None, float("inf"))]:
+        with pytest.raises(gb.GridBiasError):
+            link.deposit(sim, s, time=time)
+    after = link.bias.to_state()
+    assert before[0] == after[0]
+    for name in before[1]:
+        np.testing.assert_array_equal(before[1][name], after[1][name])
+
+
+def test_an_engine_table_that_is_not_the_replay_of_its_hills_is_refused(tmp_path):
+    link, sim = make_run()
+    for _ in range(3):
+        sim.step(10)
+        link.deposit(sim)
+    link.save(sim, tmp_path / "run.gbz")
+    meta, arrays = read_checkpoint(tmp_path / "run.gbz")
+    arrays["engine.folded_values"] = arrays["engine.folded_values"] + 0.5
+    write_checkpoint(tmp_path / "forged.gbz", meta, arrays, kind=CHECKPOINT_KIND)
+    other, sim2 = make_run(seed=3)
+    match = r"engine table differs by 0.5 kJ/mol from the replay of its \d+ folded"
+    with pytest.raises(gb.CheckpointError, match=match):
+        other.restore(sim2, tmp_path / "forged.gbz")
+    assert other.bias.n_hills == 0
+
+
+def test_a_log_from_before_run_ids_is_continued(tmp_path):
+    """A run and log written before run ids existed: the restored run appends to its old log."""
+    ckpt, log = tmp_path / "run.gbz", tmp_path / "run.gbl"
+    link, sim = make_run()
+    rep = link.reporter(10, checkpoint=ckpt, checkpoint_every=50, log=log)
+    sim.reporters.append(rep)
+    sim.step(50)
+    rep.close()
+    old = read_cvlog(log)
+    metadata = {k: v for k, v in old.metadata.items() if k != "run_id"}
+    log.unlink()
+    with gbl.CVLogWriter(log, list(old.columns), list(old.units), metadata) as writer:
+        writer.write(old.data)
+    meta, arrays = read_checkpoint(ckpt)
+    del meta["bias"]["run_id"]
+    write_checkpoint(ckpt, meta, arrays, kind=CHECKPOINT_KIND)
+    link2, sim2 = make_run(seed=2)
+    rep2 = link2.reporter(10, checkpoint=ckpt, checkpoint_every=50, log=log)
+    sim2.reporters.append(rep2)
+    link2.restore(sim2, ckpt)
+    sim2.step(20)
+    rep2.close()
+    np.testing.assert_array_equal(read_cvlog(log).column("step"), np.arange(10, 71, 10))
