@@ -160,7 +160,11 @@ class GridBias:
                 stacklevel=2)
         # Kernel arguments, padded to three axes.
         shape3 = tuple(grid.shape) + (1,) * (3 - d)
-        self._coef = np.zeros((1 << d,) + shape3)
+        try:
+            self._coef = np.zeros((1 << d,) + shape3)
+        except MemoryError:
+            raise GridError(f"bins {grid.bins.tolist()}: this machine cannot hold the {grid.table_bytes:,} bytes "
+                            "of the bias table; use fewer bins") from None
         self._lower3 = np.zeros(3)
         self._upper3 = np.zeros(3)
         self._spacing3 = np.ones(3)

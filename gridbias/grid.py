@@ -13,9 +13,10 @@ __all__ = ["Grid", "MAX_DIMENSIONS", "MEMORY_BUDGET"]
 MAX_DIMENSIONS = 3
 
 #: Largest table a bias on a grid may hold, bytes: the node values and their spline derivatives
-#: (``8 * 2**d`` bytes per node). 16 GiB allows 700^3 nodes in 3-D and 22,000^2 in 2-D; larger grids are
-#: refused before anything is allocated (a typo in ``bins`` must not exhaust the machine's memory).
-MEMORY_BUDGET = 16 * 2**30
+#: (``8 * 2**d`` bytes per node). 4 GiB allows 400^3 nodes in 3-D and 11,000^2 in 2-D (re-sending such a
+#: table to OpenMM already takes about a minute); larger grids are refused before anything is allocated
+#: (a typo in ``bins`` must not exhaust the machine's memory).
+MEMORY_BUDGET = 4 * 2**30
 
 # Fewest float64 steps an axis must span: a spacing below ~1e-12 of the coordinates cannot be resolved.
 _RESOLUTION = 1e-12

@@ -211,3 +211,19 @@ def test_a_log_from_before_run_ids_is_continued(tmp_path):
     sim2.step(20)
     rep2.close()
     np.testing.assert_array_equal(read_cvlog(log).column("step"), np.arange(10, 71, 10))
+
+
+@pytest.mark.parametrize("change, match", [
+    (dict(walls=None), "walls must be a sequence"),
+    (dict(walls=[None]), "each wall must be"),
+    (dict(walls=[{"cv": 0, "bound": 1.0}]), "wall .* missing"),
+    (dict(temperature="300"), "temperature must be a number"),
+    (dict(bins=[10**9]), "memory budget"),
+    (dict(lower=[-1e308], upper=[1e308]), "overflows a float"),
+    (dict(sigma="wide"), "sigma"),
+])
+def test_make_bias_refuses_parameters_that_cannot_work_by_name(change, match):
+    args = dict(lower=[-math.pi], upper=[math.pi], bins=[48], sigma=[0.3], height=1.0, temperature=300.0)
+    args.update(change)
+    with pytest.raises(gb.GridBiasError, match=match):
+        gbo.make_bias([gbo.dihedral(0, 1, 2, 3)], **args)
