@@ -30,7 +30,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from .exports import FIGURE_FORMATS, TABLE_FORMATS, CVDisplay, profile_bytes, surface_bytes, write_file
+from .exports import FIGURE_FORMATS, TABLE_FORMATS, CVDisplay, profile_bytes, surface_bytes, write_files
 from .progress import ProgressLine
 from .runs import load_run, log_column, read_log, run_frames
 
@@ -242,10 +242,9 @@ def _cmd_export(args) -> int:
     basins = None
     if any(fmt in FIGURE_FORMATS for _, fmt in outputs):
         basins = analysis.find_basins(bias.grid, surface.free_energy, bias.kT)
-    for path, fmt in outputs:
-        data = surface_bytes(surface, fmt, names=run.names, units=run.units, angle_unit=args.angle_unit,
-                             basins=basins)
-        write_file(path, data)
+    write_files([(path, surface_bytes(surface, fmt, names=run.names, units=run.units, angle_unit=args.angle_unit,
+                                      basins=basins)) for path, fmt in outputs])  # all or none
+    for path, _ in outputs:
         print(f"wrote {path}")
     what = f"{surface.n_hills:,} hills" + (f", t = {surface.time:g} ps" if np.isfinite(surface.time) else "")
     print(f"free-energy surface of {run.path} ({what}), kJ/mol, minimum 0")
@@ -346,8 +345,9 @@ def _cmd_reweight(args) -> int:
         finite = np.isfinite(profile.free_energy)
         print(f"  {finite.sum()} of {finite.size} bins reached; F up to {np.nanmax(profile.free_energy):.4g} "
               f"kJ/mol, median error {np.nanmedian(profile.error[finite]):.3g} kJ/mol")
-    for path, fmt in outputs:
-        write_file(path, profile_bytes(profile, fmt, units=units, angle_unit=args.angle_unit))
+    write_files([(path, profile_bytes(profile, fmt, units=units, angle_unit=args.angle_unit))
+                 for path, fmt in outputs])  # all or none
+    for path, _ in outputs:
         print(f"wrote {path}")
     return EXIT_OK
 

@@ -20,7 +20,7 @@ import numpy as np
 from .errors import OutputError, ParameterError
 
 __all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "CVDisplay", "surface_bytes", "profile_bytes", "shown_profile",
-           "figure_bytes", "require_plots", "write_file"]
+           "figure_bytes", "require_plots", "write_file", "write_files"]
 
 #: File types (extensions) of tables and of figures.
 TABLE_FORMATS = ("csv", "npz")
@@ -185,3 +185,25 @@ def write_file(path, data: bytes) -> None:
     from ._files import write_atomically
 
     write_atomically(path, data, what="file", error=OutputError)
+
+
+def write_files(items) -> None:
+    """Write every ``(path, data)`` atomically, or none: when one fails, the files this call created are
+    removed again (files that existed before keep their old content or the new one, whole), and the
+    OutputError of the failure is raised."""
+    import os
+
+    created = []
+    try:
+        for path, data in items:
+            existed = os.path.exists(path)
+            write_file(path, data)
+            if not existed:
+                created.append(path)
+    except BaseException:
+        for path in created:
+            try:
+                os.unlink(path)
+            except OSError:
+                pass
+        raise

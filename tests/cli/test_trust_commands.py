@@ -152,3 +152,20 @@ def test_a_demo_that_fails_leaves_no_folder(tmp_path, capsys):
     code, _, err = run_cli(capsys, "demo", "--out", tmp_path / "results", "--platform", missing, "--length", "0.0002")
     assert code == 2 and "is not available" in err
     assert not (tmp_path / "results").exists()
+
+
+def test_a_command_that_fails_halfway_removes_the_outputs_it_made(tmp_path, capsys, monkeypatch):
+    """Two outputs, the second cannot be written: the first is removed again, nothing is left behind."""
+    ckpt, _ = make_run_files(tmp_path)
+    real, calls = gbf.write_all, []
+
+    def second_fails(fd, data):
+        calls.append(1)
+        if len(calls) > 1:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(fd, data)
+
+    monkeypatch.setattr(gbf, "write_all", second_fails)
+    code, _, err = run_cli(capsys, "export", ckpt, tmp_path / "fes.csv", tmp_path / "fes.npz")
+    assert code == 1 and "fes.npz" in err and "No space left" in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run.gbl", "run.gbz"]
