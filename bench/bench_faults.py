@@ -152,6 +152,26 @@ def impossible_logs(rng, n):
         yield forge_cvlog(text.encode(), 3 if case == 0 else (1 if case == 1 else 2), np.zeros(24).tobytes())
 
 
+class _BadInput(Exception):
+    pass
+
+
+def _cli_inspect(path):
+    """`gridbias inspect path`: raise _BadInput for exit 2 with one line, anything else for other outcomes."""
+    import contextlib
+    import io
+
+    from gridbias.cli import main
+
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
+        code = main(["inspect", path])
+    text = err.getvalue()
+    if code == 2 and text.count("\n") == 1 and "unexpected" not in text:
+        raise _BadInput(text)
+    raise RuntimeError(f"exit {code}: {text}")
+
+
 def fuzz(n):
     tally = Tally()
     rng = np.random.default_rng(2024)
@@ -172,6 +192,8 @@ def fuzz(n):
               lambda p: read_cvlog(p), gb.CVLogError)
     tally.run("CV logs: checksum-valid, impossible headers or run metadata (forged)", impossible_logs(rng, n),
               lambda p: runs.read_log(p, min_records=1), gb.CVLogError)
+    tally.run("the same forged checkpoints given to `gridbias inspect` (exit 2, one line)",
+              impossible_states(bias, np.random.default_rng(99), n), _cli_inspect, _BadInput)
     print("| files | tried | refused with the reader's error | anything else |")
     print("|---|---:|---:|---:|")
     for name, tried, refused, other in tally.rows:

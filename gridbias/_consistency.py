@@ -5,8 +5,8 @@ a file whose checksum is right can still say two different things. `table_proble
 
 - up to `FULL_REPLAY_BUDGET` node updates (hills times footprint nodes times ``2**d`` tables, about half
   a second), the whole history is replayed into a fresh table and every entry compared;
-- beyond that (large histories: a 48^3 grid replays about 700 hills a second, so 10,000 hills take
-  15 s; bench/README.md, Faults), a
+- beyond that (large histories: a 48^3 grid replays 700-1,700 hills a second, so 10,000 hills take
+  6-15 s; bench/README.md, Faults), a
   deterministic subset is checked: the node values at `SUBSET_NODES` nodes (the largest and smallest value
   and evenly spaced nodes of the flattened grid) are recomputed as the direct sum of every hill, and every
   spline-derivative table is checked along the grid lines through those nodes. A table altered only away
