@@ -566,4 +566,22 @@ def lock_open_file(fd: int, message: str) -> None:
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except BlockingIOError:
-        raise LockError(message) from None
+        pid = _flock_holder(fd)
+        holder = f" (held by process {pid} on host {socket.gethostname()!r})" if pid else ""
+        raise LockError(message + holder) from None
+
+
+def _flock_holder(fd: int):
+    """The pid holding a flock on the open file ``fd``, from Linux's /proc/locks (None elsewhere or unknown).
+    A pid there may be the process that forked the holder; the lock is refused either way."""
+    st = os.fstat(fd)
+    inode = f"{os.major(st.st_dev):02x}:{os.minor(st.st_dev):02x}:{st.st_ino}"
+    try:
+        with open("/proc/locks") as locks:
+            for line in locks:
+                fields = line.split()
+                if len(fields) > 5 and fields[1] == "FLOCK" and fields[5] == inode and fields[4].isdigit():
+                    return int(fields[4])
+    except OSError:
+        return None
+    return None

@@ -81,6 +81,25 @@ def test_a_forked_child_does_not_keep_a_cv_log_writer_lock(tmp_path):
         os.kill(child, 9)
 
 
+@pytest.mark.skipif(not os.path.exists("/proc/locks"), reason="names the holder from Linux's /proc/locks")
+def test_a_refused_cv_log_writer_names_the_holder(tmp_path):
+    path = tmp_path / "run.gbl"
+    holder = python(f"""
+        import time
+        from gridbias.cvlog import CVLogWriter
+        writer = CVLogWriter({str(path)!r}, ["step"], ["1"])
+        print("HELD", flush=True)
+        time.sleep(60)
+    """)
+    try:
+        assert holder.stdout.readline() == "HELD\n"
+        with pytest.raises(gb.LockError, match=f"already open for writing .*held by process {holder.pid} on host"):
+            CVLogWriter(path, ["step"], ["1"])
+    finally:
+        holder.kill()
+        holder.wait(30)
+
+
 def test_runs_started_at_the_same_moment_all_name_the_holder(tmp_path):
     """The issue: simultaneous starts often said the holder 'has not recorded its id yet'."""
     path, go = tmp_path / "run.gbz", tmp_path / "go"
