@@ -92,6 +92,12 @@ def checked_bias(cls, meta, arrays):
     n = _field(meta, "n_hills", int, low=0)
     n_outside = _field(meta, "n_outside", int, low=0)
     run_id = check_run_id(meta["run_id"], "bias state run_id") if "run_id" in meta else None
+    if "walkers" in meta:  # written by a SharedBias: walker count and exchanges
+        walkers = meta["walkers"]
+        if not isinstance(walkers, dict) or set(walkers) != {"count", "exchanges"}:
+            raise CheckpointError("bias state walkers must hold exactly count and exchanges")
+        _field(walkers, "count", int, low=1)
+        _field(walkers, "exchanges", int, low=0)
     if set(arrays) != _ARRAYS:
         raise CheckpointError(f"bias state arrays are {sorted(arrays)[:6]}, expected {sorted(_ARRAYS)}")
     shape3 = tuple(grid.shape) + (1,) * (3 - d)

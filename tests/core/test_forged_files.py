@@ -108,6 +108,8 @@ def test_contents_that_contradict_the_hills_are_refused(tmp_path, edit, index, v
     ("span that overflows", lambda m, a: m["grid"].update(lower=[-1e308, 0.0], upper=[1e308, 2.0]), "overflows"),
     ("extra array", lambda m, a: a.update(extra=np.zeros(3)), "arrays are"),
     ("unknown field", lambda m, a: m.update(surprise=1), "unknown fields"),
+    ("walker count as text", lambda m, a: m.update(walkers={"count": "2", "exchanges": 0}), "count must be an integer"),
+    ("negative exchanges", lambda m, a: m.update(walkers={"count": 2, "exchanges": -3}), "exchanges = -3 is out"),
     ("infinite time", lambda m, a: a["hill_times"].__setitem__(0, np.inf), "finite or NaN"),
     ("centre outside the grid", lambda m, a: a["hill_centers"].__setitem__((0, 0), 5.0), "inside the grid"),
     ("zero height table", lambda m, a: a["coefficients"].__setitem__(Ellipsis, 0.0), "replay of its 12 hills"),
