@@ -20,6 +20,7 @@ import re
 import secrets
 import socket
 import time
+import weakref
 
 from .errors import LockError, ParameterError, WriteError
 
@@ -381,6 +382,7 @@ class CheckpointLock:
             raise LockError("CheckpointLock needs POSIX file locking (fcntl), which this platform lacks")
         if self._fd is not None:
             raise LockError(f"this CheckpointLock already holds {self.lock_path!r}")
+        seen = None
         for _ in range(1000):  # each retry means the file changed under us; a handful is the most seen
             try:
                 fd = os.open(self.lock_path, os.O_RDWR)
@@ -402,8 +404,12 @@ class CheckpointLock:
                 continue
             if not locked:
                 holder = _read_holder(fd)
+                replaced = not _same_file(fd, self.lock_path)
                 os.close(fd)
-                if holder is None:  # a file from an older gridbias being written right now: look again
+                seen = holder or seen
+                if holder is None or replaced or _dead_here(holder):
+                    # being written, replaced, or a dead holder's file that another run is taking over
+                    # right now: look again, so that the refusal names the live holder
                     time.sleep(0.01)
                     continue
                 raise LockError(self._held_message(holder))
@@ -416,8 +422,9 @@ class CheckpointLock:
             if published:
                 self.previous_holder = previous
                 break
-        else:
-            raise LockError(f"could not claim {self.lock_path!r}: it kept changing while being claimed")
+        else:  # ten seconds of a lock held by a process other than the one its file names
+            raise LockError(self._held_message(seen) if seen else
+                            f"could not claim {self.lock_path!r}: it kept changing while being claimed")
         self._remove_stray_temp_files()
         _HELD.add(self)
         return self
@@ -504,6 +511,20 @@ class CheckpointLock:
                     pass
 
 
+def _dead_here(holder: dict) -> bool:
+    """True when the holder record names a process of this host that no longer exists."""
+    pid = holder.get("pid")
+    if holder.get("host") != socket.gethostname() or type(pid) is not int or pid < 1:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except OSError:  # exists, owned by someone else
+        pass
+    return False
+
+
 def _try_flock(fd: int) -> bool:
     """Take an exclusive flock without waiting; False when another open file holds it."""
     try:
@@ -520,31 +541,19 @@ def _same_file(fd: int, path: str) -> bool:
         return False
 
 
-class _HeldLocks:
-    """Every lock (checkpoint lock, CV log writer) this process holds. A forked child (a multiprocessing
-    worker, for example) closes its inherited copies at once, so a lock never outlives its holder because
-    a child lives on, and a refusal never names a dead process."""
-
-    def __init__(self):
-        import weakref
-
-        self._held = weakref.WeakSet()
-        if hasattr(os, "register_at_fork"):
-            os.register_at_fork(after_in_child=self._drop_all)
-
-    def add(self, holder) -> None:
-        self._held.add(holder)
-
-    def discard(self, holder) -> None:
-        self._held.discard(holder)
-
-    def _drop_all(self) -> None:
-        for holder in list(self._held):
-            holder._drop_after_fork()
-        self._held.clear()
+_HELD = weakref.WeakSet()  # every lock this process holds (checkpoint locks, CV log writers)
 
 
-_HELD = _HeldLocks()
+def _drop_held_locks() -> None:
+    """In a forked child (a multiprocessing worker, say): close the inherited copies at once, so a lock
+    never outlives its holder because a child lives on, and a refusal never names a dead process."""
+    for holder in list(_HELD):
+        holder._drop_after_fork()
+    _HELD.clear()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_drop_held_locks)
 
 
 def _read_holder(fd: int):
