@@ -16,6 +16,7 @@ from .errors import (
     LockError,
     OutputError,
     ParameterError,
+    WriteError,
 )
 from .grid import Grid
 from .history import HillHistory
@@ -39,6 +40,7 @@ __all__ = [
     "LockError",
     "CVLogError",
     "BlownUpError",
+    "WriteError",
     "OutputError",
     "__version__",
 ]

@@ -11,6 +11,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import errno
 import json
 import math
@@ -19,15 +20,17 @@ import re
 import secrets
 import socket
 import time
+import weakref
 
-from .errors import CheckpointError, LockError, ParameterError
+from .errors import LockError, ParameterError, WriteError
 
 try:
     import fcntl
 except ImportError:  # Windows: files work; CheckpointLock raises LockError, CV logs skip their lock
     fcntl = None
 
-__all__ = ["encode_json", "describe_foreign", "write_atomically", "AtomicFile", "create_temp", "write_all",
+__all__ = ["encode_json", "decode_json", "describe_foreign", "new_folders", "same_file", "write_atomically",
+           "AtomicFile", "create_temp", "write_all",
            "fsync_folder", "fsync_path", "reason", "CheckpointLock", "lock_open_file"]
 
 _MAX_JSON_DEPTH = 100
@@ -54,9 +57,9 @@ def encode_json(value, what: str) -> bytes:
     return json.dumps(value, ensure_ascii=False, allow_nan=False).encode("utf-8")
 
 
-def _check_json(value, where: str, depth: int) -> None:
-    if depth > _MAX_JSON_DEPTH:
-        raise ParameterError(f"{where} is nested deeper than {_MAX_JSON_DEPTH} levels (circular?)")
+def _check_json(value, where: str, depth: int, max_depth: int = _MAX_JSON_DEPTH) -> None:
+    if depth > max_depth:
+        raise ParameterError(f"{where} is nested deeper than {max_depth} levels (circular?)")
     if value is None or isinstance(value, (bool, str, int)):
         return
     if isinstance(value, float):
@@ -67,18 +70,51 @@ def _check_json(value, where: str, depth: int) -> None:
         return
     if isinstance(value, (list, tuple)):
         for i, item in enumerate(value):
-            _check_json(item, f"{where}[{i}]", depth + 1)
+            _check_json(item, f"{where}[{i}]", depth + 1, max_depth)
         return
     if isinstance(value, dict):
         for key, item in value.items():
             if not isinstance(key, str):
                 raise ParameterError(f"{where} has key {key!r} ({type(key).__name__}); keys must be str")
-            _check_json(item, f"{where}[{key!r}]", depth + 1)
+            _check_json(item, f"{where}[{key!r}]", depth + 1, max_depth)
         return
     raise ParameterError(
         f"{where} has type {type(value).__name__}, which JSON cannot hold exactly; allowed: dict (str keys), "
         "list, tuple, str, int, float, bool, None (convert NumPy scalars with int()/float()/bool())"
     )
+
+
+def decode_json(raw: bytes, *, max_depth: int = _MAX_JSON_DEPTH):
+    """Parse UTF-8 JSON written by `_encode_json`, refusing what the writer never produces.
+
+    Refused (ValueError): invalid UTF-8 or JSON, NaN/Infinity, numbers that overflow a float (``1e400``),
+    integers of more than 4300 digits, nesting deeper than `max_depth`.
+    """
+    try:
+        value = json.loads(raw.decode("utf-8"), parse_constant=_refuse_constant, parse_float=_finite_float)
+    except RecursionError:
+        raise ValueError(f"JSON nested deeper than {max_depth} levels") from None
+    try:
+        _check_json(value, "JSON", 0, max_depth)
+    except ParameterError as exc:
+        raise ValueError(str(exc)) from None
+    return value
+
+
+def _finite_float(text: str) -> float:
+    x = float(text)
+    if not math.isfinite(x):
+        raise ValueError(f"JSON number {text[:40]} does not fit a float")
+    return x
+
+
+def _refuse_constant(name: str):
+    raise ValueError(f"JSON constant {name} is not allowed")
+
+
+def _short(exc, limit: int = 300) -> str:
+    text = " ".join(str(exc).split())
+    return text if len(text) <= limit else text[:limit] + "..."
 
 
 def describe_foreign(head: bytes) -> str:
@@ -93,7 +129,7 @@ def describe_foreign(head: bytes) -> str:
 class AtomicFile:
     """A file written in full under a temporary name and then put in place atomically.
 
-    Use as a context manager: ``with AtomicFile(path, what="checkpoint", error=CheckpointError) as f:``
+    Use as a context manager: ``with AtomicFile(path, what="checkpoint", error=WriteError) as f:``
     then ``f.write(bytes)`` (or use ``f.fd``). A clean exit fsyncs the file, puts it at ``path`` and
     fsyncs the folder; an exception removes the temporary file and leaves an existing ``path`` untouched.
     Every OSError becomes ``error`` naming ``what``, the path and the cause (chained).
@@ -106,7 +142,8 @@ class AtomicFile:
     verb : str, keyword-only
         What was being done, for messages: "could not <verb> <what> <path>" (default "write").
     error : type
-        The library error to raise (CheckpointError, CVLogError, OutputError).
+        The library error to raise: WriteError or a subclass (OutputError for result files). A failed
+        write is a failure of the work, never bad input.
     replace : bool, keyword-only
         True: replace an existing file (rename). False: never replace one made meanwhile (hard link;
         the existing file wins).
@@ -116,7 +153,7 @@ class AtomicFile:
         Leave ``fd`` open after the file is in place; the caller then owns it and must close it.
     """
 
-    def __init__(self, path, *, what: str, error: type, verb: str = "write", replace: bool = True,
+    def __init__(self, path, *, what: str, error: type = WriteError, verb: str = "write", replace: bool = True,
                  flags: int = os.O_WRONLY, keep_open: bool = False):
         self.path = os.fspath(path)
         self.what = what
@@ -143,7 +180,7 @@ class AtomicFile:
             raise self._failed(exc) from exc
 
     def _failed(self, exc: OSError) -> Exception:
-        return self.error(f"could not {self.verb} {self.what} {self.path!r}: {reason(exc)}")
+        return self.error(f"could not {self.verb} {self.what} {self.path!r}: {reason(exc)}", path=self.path)
 
     def __exit__(self, exc_type, exc, tb) -> None:
         try:
@@ -180,11 +217,11 @@ class AtomicFile:
             except OSError as error:
                 raise self.error(
                     f"wrote {self.what} {self.path!r}, but could not sync its folder, so the rename may not "
-                    f"survive a power failure: {reason(error)}"
+                    f"survive a power failure: {reason(error)}", path=self.path
                 ) from error
 
 
-def write_atomically(path, chunks, *, what: str, error: type, replace: bool = True) -> None:
+def write_atomically(path, chunks, *, what: str, error: type = WriteError, replace: bool = True) -> None:
     """Write the byte chunks to ``path`` atomically (see :class:`AtomicFile`); ``chunks`` may be one bytes.
 
     Raises ``error`` naming ``what``, the path and the cause; an existing file at ``path`` is then intact.
@@ -194,6 +231,42 @@ def write_atomically(path, chunks, *, what: str, error: type, replace: bool = Tr
     with AtomicFile(path, what=what, error=error, replace=replace) as f:
         for chunk in chunks:
             f.write(chunk)
+
+
+@contextlib.contextmanager
+def new_folders(folder: str):
+    """Make ``folder`` and its missing parents; if the block raises, remove those it made that are empty.
+
+    So a command that fails leaves no empty folders behind. WriteError when a folder cannot be made.
+    """
+    made = []
+    path = os.path.abspath(folder)
+    while not os.path.exists(path):
+        made.append(path)
+        path = os.path.dirname(path)
+    try:
+        os.makedirs(folder, exist_ok=True)
+    except OSError as exc:
+        raise WriteError(f"could not create the folder {folder!r}: {reason(exc)}", path=folder) from exc
+    try:
+        yield folder
+    except BaseException:
+        for path in made:  # deepest first
+            try:
+                os.rmdir(path)
+            except OSError:
+                break  # not empty (or gone): keep it and everything above it
+        raise
+
+
+def same_file(a, b) -> bool:
+    """True when paths ``a`` and ``b`` name one file (same resolved path, or same device and inode)."""
+    if os.path.realpath(a) == os.path.realpath(b):
+        return True
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return False
 
 
 def create_temp(path: str, flags: int = os.O_WRONLY):
@@ -253,7 +326,9 @@ class CheckpointLock:
     The claim is a POSIX ``flock`` on the sidecar file ``<path>.lock``, which holds the holder's pid,
     host name and start time as JSON. The kernel drops the flock when the holder exits or is killed, so a
     lock file left by a dead process is taken over silently (its old content is kept in
-    `previous_holder`). While the lock is held, stray temporary files of `path` left by killed writers
+    `previous_holder`). Children the holder forks do not keep the lock: they close their copy at the fork,
+    so the lock ends with the holder even while its children live on. While the lock is held, stray
+    temporary files of `path` left by killed writers
     (``<path>.tmp-<16 hex digits>``) are removed.
 
     Parameters
@@ -298,53 +373,103 @@ class CheckpointLock:
         return self._fd is not None
 
     def acquire(self) -> "CheckpointLock":
-        """Claim the path; raise LockError naming the holder (pid, host) if another one holds it."""
+        """Claim the path; raise LockError naming the holder (pid, host) if another one holds it.
+
+        The lock file appears with its holder already recorded (it is written, locked, then linked into
+        place), so a refusal always names the holder, even when two runs start at the same moment.
+        """
         if fcntl is None:
             raise LockError("CheckpointLock needs POSIX file locking (fcntl), which this platform lacks")
         if self._fd is not None:
             raise LockError(f"this CheckpointLock already holds {self.lock_path!r}")
-        while True:
+        seen = None
+        for _ in range(1000):  # each retry means the file changed under us; a handful is the most seen
             try:
-                fd = os.open(self.lock_path, os.O_RDWR | os.O_CREAT, 0o666)
-            except OSError as exc:
-                raise CheckpointError(
-                    f"could not create lock file {self.lock_path!r}: {reason(exc)}"
-                ) from exc
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except BlockingIOError:
-                holder = _read_holder(fd)
-                os.close(fd)
-                raise LockError(self._held_message(holder)) from None
-            except OSError as exc:
-                os.close(fd)
-                raise CheckpointError(f"could not lock {self.lock_path!r}: {reason(exc)}") from exc
-            # The previous holder may have released (and unlinked) the file between our open and flock:
-            # then we locked an orphan and must start again on the current file.
-            try:
-                same = os.path.samestat(os.fstat(fd), os.stat(self.lock_path))
+                fd = os.open(self.lock_path, os.O_RDWR)
             except FileNotFoundError:
-                same = False
-            if same:
+                if self._publish(None):
+                    break
+                continue
+            except OSError as exc:
+                raise WriteError(f"could not open lock file {self.lock_path!r}: {reason(exc)}",
+                                 path=self.lock_path) from exc
+            try:
+                locked = _try_flock(fd)
+                same = _same_file(fd, self.lock_path)
+            except OSError as exc:
+                os.close(fd)
+                raise WriteError(f"could not lock {self.lock_path!r}: {reason(exc)}", path=self.lock_path) from exc
+            if not same:  # replaced or removed meanwhile: look again
+                os.close(fd)
+                continue
+            if not locked:
+                holder = _read_holder(fd)
+                replaced = not _same_file(fd, self.lock_path)
+                os.close(fd)
+                seen = holder or seen
+                if holder is None or replaced or _dead_here(holder):
+                    # being written, replaced, or a dead holder's file that another run is taking over
+                    # right now: look again, so that the refusal names the live holder
+                    time.sleep(0.01)
+                    continue
+                raise LockError(self._held_message(holder))
+            # Its holder died: replace the file by ours, complete before it becomes visible.
+            previous = _read_holder(fd)
+            try:
+                published = self._publish(fd)
+            finally:
+                os.close(fd)
+            if published:
+                self.previous_holder = previous
                 break
-            os.close(fd)
-        self.previous_holder = _read_holder(fd)
+        else:  # ten seconds of a lock held by a process other than the one its file names
+            raise LockError(self._held_message(seen) if seen else
+                            f"could not claim {self.lock_path!r}: it kept changing while being claimed")
+        self._remove_stray_temp_files()
+        _HELD.add(self)
+        return self
+
+    def _publish(self, stale_fd) -> bool:
+        """Write our record to a new locked file and put it at lock_path: by link() when there is no file
+        (False if another process was faster), by rename over the stale file whose lock we hold."""
         record = {"pid": os.getpid(), "host": socket.gethostname(),
                   "since": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
+        tmp = None
         try:
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, json.dumps(record).encode("utf-8") + b"\n", 0)
+            fd, tmp = create_temp(self.lock_path, os.O_RDWR)
+            try:
+                _try_flock(fd)
+                write_all(fd, json.dumps(record).encode("utf-8") + b"\n")
+                if stale_fd is None:
+                    try:
+                        os.link(tmp, self.lock_path)
+                    except FileExistsError:
+                        os.close(fd)
+                        return False
+                else:
+                    os.replace(tmp, self.lock_path)
+                    tmp = None
+            except BaseException:
+                os.close(fd)
+                raise
         except OSError as exc:
-            os.close(fd)
-            raise CheckpointError(f"could not write lock file {self.lock_path!r}: {reason(exc)}") from exc
+            raise WriteError(f"could not write lock file {self.lock_path!r}: {reason(exc)}",
+                             path=self.lock_path) from exc
+        finally:
+            if tmp is not None:
+                try:
+                    os.unlink(tmp)
+                except FileNotFoundError:
+                    pass
+        self.previous_holder = None
         self._fd = fd
-        self._remove_stray_temp_files()
-        return self
+        return True
 
     def release(self) -> None:
         """Give the path up and remove the lock file (no-op when not held)."""
         if self._fd is None:
             return
+        _HELD.discard(self)
         try:
             os.unlink(self.lock_path)  # while still locked, so nobody can lock this file in between
         except FileNotFoundError:
@@ -352,6 +477,12 @@ class CheckpointLock:
         finally:
             os.close(self._fd)
             self._fd = None
+
+    def _drop_after_fork(self) -> None:
+        """In a forked child: close the child's copy of the locked file, so the lock dies with its holder."""
+        fd, self._fd = self._fd, None
+        if fd is not None:
+            os.close(fd)
 
     def __enter__(self) -> "CheckpointLock":
         return self.acquire()
@@ -380,6 +511,51 @@ class CheckpointLock:
                     pass
 
 
+def _dead_here(holder: dict) -> bool:
+    """True when the holder record names a process of this host that no longer exists."""
+    pid = holder.get("pid")
+    if holder.get("host") != socket.gethostname() or type(pid) is not int or pid < 1:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except OSError:  # exists, owned by someone else
+        pass
+    return False
+
+
+def _try_flock(fd: int) -> bool:
+    """Take an exclusive flock without waiting; False when another open file holds it."""
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        return False
+    return True
+
+
+def _same_file(fd: int, path: str) -> bool:
+    try:
+        return os.path.samestat(os.fstat(fd), os.stat(path))
+    except FileNotFoundError:
+        return False
+
+
+_HELD = weakref.WeakSet()  # every lock this process holds (checkpoint locks, CV log writers)
+
+
+def _drop_held_locks() -> None:
+    """In a forked child (a multiprocessing worker, say): close the inherited copies at once, so a lock
+    never outlives its holder because a child lives on, and a refusal never names a dead process."""
+    for holder in list(_HELD):
+        holder._drop_after_fork()
+    _HELD.clear()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_drop_held_locks)
+
+
 def _read_holder(fd: int):
     """The holder record in a lock file, or None when it is empty or unreadable."""
     try:
@@ -399,4 +575,22 @@ def lock_open_file(fd: int, message: str) -> None:
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except BlockingIOError:
-        raise LockError(message) from None
+        pid = _flock_holder(fd)
+        holder = f" (held by process {pid} on host {socket.gethostname()!r})" if pid else ""
+        raise LockError(message + holder) from None
+
+
+def _flock_holder(fd: int):
+    """The pid holding a flock on the open file ``fd``, from Linux's /proc/locks (None elsewhere or unknown).
+    A pid there may be the process that forked the holder; the lock is refused either way."""
+    st = os.fstat(fd)
+    inode = f"{os.major(st.st_dev):02x}:{os.minor(st.st_dev):02x}:{st.st_ino}"
+    try:
+        with open("/proc/locks") as locks:
+            for line in locks:
+                fields = line.split()
+                if len(fields) > 5 and fields[1] == "FLOCK" and fields[5] == inode and fields[4].isdigit():
+                    return int(fields[4])
+    except OSError:
+        return None
+    return None

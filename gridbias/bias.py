@@ -8,7 +8,9 @@ import warnings
 import numpy as np
 
 from . import _kernels
-from .errors import CheckpointError, GridError, ParameterError
+from ._bias_state import STATE_KIND, STATE_VERSION, checked_bias
+from ._identity import new_run_id
+from .errors import CheckpointError, GridBiasError, GridError, ParameterError
 from .grid import Grid
 from .history import HillHistory
 from .walls import Wall
@@ -21,18 +23,47 @@ KB = 0.00831446261815324
 #: Hill footprint radius in widths: exp(-c**2 / 2) = 1e-6, so the truncated part is below 1e-6 of the height.
 DEFAULT_CUTOFF = math.sqrt(2.0 * math.log(1e6))
 
-_STATE_KIND = "gridbias.bias"
-_STATE_VERSION = 1
+_STATE_KIND = STATE_KIND
+_STATE_VERSION = STATE_VERSION
+def _show(value) -> str:
+    text = repr(value)
+    return text if len(text) <= 80 else text[:77] + "..."
 
 
 def _positive_scalar(name, value, allowed):
+    if isinstance(value, (str, bytes, bool, np.bool_)):
+        raise ParameterError(f"{name} must be a number ({allowed}), got {_show(value)}")
     try:
         x = float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} must be a number ({allowed}), got {value!r}") from None
+    except (TypeError, ValueError, OverflowError):
+        raise ParameterError(f"{name} must be a number ({allowed}), got {_show(value)}") from None
     if not (math.isfinite(x) and x > 0):
-        raise ParameterError(f"{name} must be finite and {allowed}, got {value!r}")
+        raise ParameterError(f"{name} must be finite and {allowed}, got {_show(value)}")
     return x
+
+
+def _numbers(name, value, what="CV values") -> np.ndarray:
+    """`value` as a float array; ParameterError naming `name` for anything that is not plain numbers."""
+    try:
+        raw = np.asarray(value)
+        if raw.dtype.kind not in "iuf":
+            raise TypeError
+        return raw.astype(float)
+    except (TypeError, ValueError, OverflowError):
+        raise ParameterError(f"{name} must be numbers ({what}), got {_show(value)}") from None
+
+
+def _time_value(name, time) -> float:
+    """A hill time in ps: a finite number, or NaN for None."""
+    if time is None:
+        return math.nan
+    if isinstance(time, (bool, np.bool_, str, bytes)) or not isinstance(time, (int, float, np.integer,
+                                                                                 np.floating)):
+        raise ParameterError(f"{name} must be a number of ps or None, got {_show(time)}")
+    t = float(time)
+    if not math.isfinite(t):
+        raise ParameterError(f"{name} must be finite (ps) or None, got {_show(time)}")
+    return t
 
 
 class GridBias:
@@ -83,7 +114,7 @@ class GridBias:
         if not isinstance(grid, Grid):
             raise ParameterError(f"grid must be a gridbias.Grid, got {type(grid).__name__}")
         d = grid.ndim
-        sigma_d = np.atleast_1d(np.asarray(sigma, dtype=float))
+        sigma_d = np.atleast_1d(_numbers("sigma", sigma, "widths in CV units"))
         if sigma_d.shape != (d,):
             raise ParameterError(f"sigma must have {d} entries (one per CV), got {np.shape(sigma)}")
         for i, s in enumerate(sigma_d):
@@ -100,12 +131,22 @@ class GridBias:
             bias_factor = gamma
         self._bias_factor = bias_factor
         self._cutoff = _positive_scalar("cutoff", cutoff, "> 0 hill widths")
+        if isinstance(walls, Wall):
+            walls = (walls,)
+        if walls is None or isinstance(walls, (str, bytes, dict)) or not hasattr(walls, "__iter__"):
+            raise ParameterError(f"walls must be a sequence of gridbias.Wall (or () for none), got {_show(walls)}")
         walls = tuple(walls)
         for w in walls:
             if not isinstance(w, Wall):
                 raise ParameterError(f"walls must hold gridbias.Wall objects, got {type(w).__name__}")
             if w.cv >= d:
                 raise ParameterError(f"Wall cv={w.cv} does not exist: the grid has {d} CVs (0..{d - 1})")
+            lo, up = grid.lower[w.cv], grid.upper[w.cv]
+            if not grid.periodic[w.cv] and not lo <= w.bound <= up:
+                warnings.warn(
+                    f"Wall on cv {w.cv} starts at {w.bound:g}, outside the grid ({lo:g} .. {up:g}): it only acts "
+                    "where the grid part of the bias is zero; put walls about 3 sigma inside the grid edges",
+                    stacklevel=2)
         self._walls = walls
         self._grid = grid
         sigma_d.setflags(write=False)
@@ -119,7 +160,11 @@ class GridBias:
                 stacklevel=2)
         # Kernel arguments, padded to three axes.
         shape3 = tuple(grid.shape) + (1,) * (3 - d)
-        self._coef = np.zeros((1 << d,) + shape3)
+        try:
+            self._coef = np.zeros((1 << d,) + shape3)
+        except MemoryError:
+            raise GridError(f"bins {grid.bins.tolist()}: this machine cannot hold the {grid.table_bytes:,} bytes "
+                            "of the bias table; use fewer bins") from None
         self._lower3 = np.zeros(3)
         self._upper3 = np.zeros(3)
         self._spacing3 = np.ones(3)
@@ -140,6 +185,7 @@ class GridBias:
         self._history = HillHistory(d)
         self._n_outside = 0
         self._warned_outside = False
+        self._run_id = new_run_id()
 
     # -- parameters ---------------------------------------------------------------------------
     grid = property(lambda self: self._grid, doc="The Grid the bias lives on.")
@@ -150,6 +196,8 @@ class GridBias:
     walls = property(lambda self: self._walls, doc="Tuple of Wall.")
     cutoff = property(lambda self: self._cutoff, doc="Hill footprint radius, in widths.")
     history = property(lambda self: self._history, doc="HillHistory of the deposited hills.")
+    run_id = property(lambda self: self._run_id, doc="The run's identity: 32 random hex digits made with the "
+                      "bias, kept by save/load, restore and copies, shared by walkers, written to CV logs.")
 
     @property
     def ndim(self) -> int:
@@ -189,7 +237,7 @@ class GridBias:
 
     # -- input checks -------------------------------------------------------------------------
     def _point(self, s, name="s") -> np.ndarray:
-        arr = np.asarray(s, dtype=float)
+        arr = _numbers(name, s)
         d = self.ndim
         if arr.ndim == 0 and d == 1:
             arr = arr.reshape(1)
@@ -199,22 +247,22 @@ class GridBias:
             raise ParameterError(f"{name} must be finite, got {arr.tolist()}: refusing NaN/inf CV values")
         return arr
 
-    def _points(self, points):
+    def _points(self, points, name="points"):
         """(n, d) float array and whether a single point was given."""
-        arr = np.asarray(points, dtype=float)
+        arr = _numbers(name, points)
         d = self.ndim
         single = arr.ndim == 0 or arr.ndim == 1
         if arr.ndim == 0 or (arr.ndim == 1 and d == 1 and arr.shape[0] == 1):
             arr = arr.reshape(1, 1)
         elif arr.ndim == 1:
             if arr.shape[0] != d:
-                raise GridError(f"points must have shape ({d},) or (n, {d}), got shape {arr.shape}")
+                raise GridError(f"{name} must have shape ({d},) or (n, {d}), got shape {arr.shape}")
             arr = arr.reshape(1, d)
         elif arr.ndim != 2 or arr.shape[1] != d:
-            raise GridError(f"points must have shape ({d},) or (n, {d}), got shape {arr.shape}")
+            raise GridError(f"{name} must have shape ({d},) or (n, {d}), got shape {arr.shape}")
         if not np.isfinite(arr).all():
             bad = arr[~np.isfinite(arr).all(axis=1)][0]
-            raise ParameterError(f"points must be finite, got {bad.tolist()}: refusing NaN/inf CV values")
+            raise ParameterError(f"{name} must be finite, got {bad.tolist()}: refusing NaN/inf CV values")
         return np.ascontiguousarray(arr), single
 
     def _note_outside(self, s):
@@ -250,20 +298,15 @@ class GridBias:
         ``time`` (ps) is recorded in the history (NaN if not given). Outside a non-periodic axis nothing
         is deposited, 0.0 is returned and ``n_outside`` grows. NaN/inf CV values raise ParameterError.
         """
-        s = np.asarray(s, dtype=float)
-        if s.ndim == 0 and self.ndim == 1:
-            s = s.reshape(1)
-        if s.shape != (self.ndim,):
-            raise GridError(f"s must have shape ({self.ndim},) (one value per CV), got shape {np.shape(s)}")
+        s = self._point(s)  # every argument is checked before anything changes
+        t = _time_value("time", time)
         h = _kernels.deposit_point(self._coef, self.ndim, self._lower3, self._upper3, self._spacing3,
                                    self._bins3, self._periodic3, s, self._sigma, self._height,
                                    self._cutoff, self._wt_inverse)
-        if h == -2.0:
-            raise ParameterError(f"s must be finite, got {s.tolist()}: refusing NaN/inf CV values")
         if h < 0.0:
             self._note_outside(s)
             return 0.0
-        self._history.append(s, h, np.nan if time is None else float(time))
+        self._history.append(s, h, t)
         return h
 
     def add_hills(self, centers, heights, times=None) -> None:
@@ -275,8 +318,8 @@ class GridBias:
         heights : (k,) float, kJ/mol, finite and >= 0
         times : (k,) float, ps, optional
         """
-        centers_kd, _ = self._points(centers)
-        heights_k = np.ascontiguousarray(np.atleast_1d(np.asarray(heights, dtype=float)))
+        centers_kd, _ = self._points(centers, "centers")
+        heights_k = np.ascontiguousarray(np.atleast_1d(_numbers("heights", heights, "kJ/mol")))
         k = centers_kd.shape[0]
         if heights_k.shape != (k,):
             raise ParameterError(f"heights must have shape ({k},) to match centers, got {heights_k.shape}")
@@ -285,9 +328,11 @@ class GridBias:
         if times is None:
             times_k = np.full(k, np.nan)
         else:
-            times_k = np.atleast_1d(np.asarray(times, dtype=float))
+            times_k = np.atleast_1d(_numbers("times", times, "ps"))
             if times_k.shape != (k,):
                 raise ParameterError(f"times must have shape ({k},) to match centers, got {times_k.shape}")
+            if np.isinf(times_k).any():
+                raise ParameterError("times must be finite or NaN (ps), got an infinite time")
         deposited_k = np.zeros(k, dtype=np.bool_)
         _kernels.add_hills(self._coef, self.ndim, self._lower3, self._upper3, self._spacing3, self._bins3,
                            self._periodic3, centers_kd, self._sigma, heights_k, self._cutoff, deposited_k)
@@ -360,8 +405,15 @@ class GridBias:
 
     def copy(self) -> "GridBias":
         """An independent copy (grid, history, counters)."""
-        meta, arrays = self.to_state()
-        return GridBias.from_state(meta, {k: v.copy() for k, v in arrays.items()})
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fresh = self._empty_like()
+        h = self._history
+        fresh._history.extend(h.centers, h.heights, h.times)
+        fresh._coef[...] = self._coef
+        fresh._n_outside = self._n_outside
+        fresh._run_id = self._run_id
+        return fresh
 
     def rebuilt(self, n_hills=None) -> "GridBias":
         """A new bias built by replaying the first ``n_hills`` hills of the history (default: all).
@@ -376,11 +428,12 @@ class GridBias:
             fresh = self._empty_like()
         h = self._history
         fresh.add_hills(h.centers[:n], h.heights[:n], h.times[:n])
+        fresh._run_id = self._run_id
         return fresh
 
     # -- state and checkpoints ----------------------------------------------------------------
     def to_state(self):
-        """The complete state as (meta, arrays): ``meta`` JSON-safe, ``arrays`` name -> ndarray."""
+        """The complete state as (meta, arrays): ``meta`` JSON-safe, ``arrays`` name -> ndarray (fresh copies)."""
         meta = {
             "kind": _STATE_KIND,
             "version": _STATE_VERSION,
@@ -393,55 +446,33 @@ class GridBias:
             "walls": [w.to_dict() for w in self._walls],
             "n_hills": self.n_hills,
             "n_outside": self._n_outside,
+            "run_id": self._run_id,
         }
         h = self._history
-        arrays = {
-            "coefficients": self._coef,
-            "hill_centers": np.ascontiguousarray(h.centers),
-            "hill_heights": np.ascontiguousarray(h.heights),
-            "hill_times": np.ascontiguousarray(h.times),
+        arrays = {  # copies: a state taken now stays the state of now
+            "coefficients": self._coef.copy(),
+            "hill_centers": np.array(h.centers),
+            "hill_heights": np.array(h.heights),
+            "hill_times": np.array(h.times),
         }
         return meta, arrays
 
     @classmethod
     def from_state(cls, meta, arrays) -> "GridBias":
-        """Rebuild a bias from ``to_state()`` output; checks every field and raises CheckpointError."""
+        """Rebuild a bias from ``to_state()`` output, refusing any state ``to_state`` cannot have written.
+
+        Checked before anything is allocated: every metadata field's type, range and finiteness, and every
+        array's name, dtype and shape against the metadata. Then the contents: a finite table, finite
+        hill centres inside the grid, finite heights >= 0, finite or NaN times, and the table equal to the
+        replay of its own hill history to rounding (gridbias._consistency says how, and which subset is
+        checked for very large histories). Raises CheckpointError naming the first problem.
+        """
         try:
-            if meta.get("kind") != _STATE_KIND:
-                raise CheckpointError(f"not a gridbias bias state (kind {meta.get('kind')!r})")
-            if int(meta["version"]) > _STATE_VERSION:
-                raise CheckpointError(
-                    f"bias state version {meta['version']} is newer than this gridbias reads "
-                    f"({_STATE_VERSION}); upgrade gridbias")
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                bias = cls(Grid.from_dict(meta["grid"]), meta["sigma"], meta["height"], meta["temperature"],
-                           meta["bias_factor"], [Wall.from_dict(w) for w in meta["walls"]],
-                           cutoff=meta["cutoff"])
-            coef = np.asarray(arrays["coefficients"])
-            centers = np.asarray(arrays["hill_centers"])
-            heights = np.asarray(arrays["hill_heights"])
-            times = np.asarray(arrays["hill_times"])
-            n = int(meta["n_hills"])
-            n_outside = int(meta["n_outside"])
+            return checked_bias(cls, meta, arrays)
         except CheckpointError:
             raise
-        except (KeyError, TypeError, ValueError, AttributeError) as exc:
-            raise CheckpointError(f"bias state is incomplete or invalid: {exc}") from exc
-        if coef.shape != bias._coef.shape or coef.dtype != np.float64:
-            raise CheckpointError(f"coefficients have shape {coef.shape} ({coef.dtype}); the grid needs "
-                                  f"{bias._coef.shape} (float64)")
-        if not np.isfinite(coef).all():
-            raise CheckpointError("coefficients hold NaN or infinite values")
-        d = bias.ndim
-        if centers.shape != (n, d) or heights.shape != (n,) or times.shape != (n,):
-            raise CheckpointError(
-                f"hill history does not match n_hills={n}: centers {centers.shape}, heights {heights.shape}, "
-                f"times {times.shape}")
-        bias._coef[...] = coef
-        bias._history.extend(centers.astype(float), heights.astype(float), times.astype(float))
-        bias._n_outside = n_outside
-        return bias
+        except (GridBiasError, KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
+            raise CheckpointError(f"bias state is invalid: {exc}") from exc
 
     def describe_difference(self, other: "GridBias") -> str:
         """One sentence naming the first parameter in which ``other`` differs ('' when all agree).
@@ -479,6 +510,7 @@ class GridBias:
         self._coef[...] = other._coef
         self._history = other._history
         self._n_outside = other._n_outside
+        self._run_id = other._run_id
 
     def save(self, path) -> None:
         """Write the complete state to ``path`` atomically (see gridbias.checkpoint)."""

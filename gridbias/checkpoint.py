@@ -35,7 +35,7 @@ from __future__ import annotations
 
 import hashlib
 import io
-import json
+import math
 import os
 import re
 import struct
@@ -43,7 +43,7 @@ import zipfile
 
 import numpy as np
 
-from ._files import CheckpointLock, describe_foreign, encode_json, reason, write_atomically
+from ._files import CheckpointLock, _short, decode_json, describe_foreign, encode_json, reason, write_atomically
 from .errors import CheckpointError, ParameterError
 
 __all__ = [
@@ -66,6 +66,8 @@ _KIND_RE = re.compile(r"[A-Za-z0-9_.\-]+")
 _NAME_RE = re.compile(r"(?!__)[A-Za-z0-9_][A-Za-z0-9_.\-]{0,199}")
 _ARRAY_KINDS = "biufc"  # bool, signed, unsigned, float, complex
 _ZIP_DATE = (1980, 1, 1, 0, 0, 0)  # fixed member timestamps: same content, same bytes
+MAX_MEMBERS = 1024  # arrays in one checkpoint (the largest written holds about 12)
+_MAX_NPY_HEADER = 10_000  # bytes of one .npy header (ours are under 200)
 # What opens each kind gridbias writes, for the message of a reader that expected another kind.
 _READERS = {
     "gridbias.bias": "; it is a bias checkpoint: open it with gridbias.GridBias.load(path) or "
@@ -98,7 +100,7 @@ def write_checkpoint(path, meta: dict, arrays: dict, *, kind: str) -> None:
     ------
     ParameterError
         `meta`, `arrays` or `kind` cannot be stored (the message names the entry and what is allowed).
-    CheckpointError
+    WriteError
         The file could not be written (chained from the OSError; the old file, if any, is intact).
 
     Notes
@@ -125,7 +127,7 @@ def write_checkpoint(path, meta: dict, arrays: dict, *, kind: str) -> None:
     digest.update(kind_bytes)
     digest.update(payload)
     header = _HEADER.pack(MAGIC, FORMAT_VERSION, len(kind_bytes), len(payload), digest.digest())
-    write_atomically(path, (header, kind_bytes, payload), what="checkpoint", error=CheckpointError)
+    write_atomically(path, (header, kind_bytes, payload), what="checkpoint")
 
 
 def _check_kind(kind) -> bytes:
@@ -194,8 +196,9 @@ def read_checkpoint(path, *, kind: str | None = None) -> tuple[dict, dict]:
 
     Notes
     -----
-    Arrays are read with ``allow_pickle=False``; nothing in the file is executed. Peak memory is about
-    twice the file size.
+    Nothing in the file is unpickled or executed. Memory is bounded by the file: members must be stored
+    uncompressed and each array's header must account for exactly its bytes, so peak memory is about
+    twice the file size whatever the file declares.
     """
     path = os.fspath(path)
     try:
@@ -273,30 +276,71 @@ def _read_kind(path: str, raw: bytes, kind_len: int) -> str:
 
 
 def _parse_payload(path: str, payload: bytes) -> tuple[dict, dict]:
+    """Unpack the archive of a checksum-valid file, never allocating more than the file holds.
+
+    Every member must be stored uncompressed (the only method the writer uses) with a ``.npy`` header
+    whose shape and dtype account for exactly the member's bytes, so the arrays' total size is bounded
+    by the file size before anything is allocated.
+    """
     try:
-        npz = np.load(io.BytesIO(payload), allow_pickle=False)
-        if not isinstance(npz, np.lib.npyio.NpzFile):
-            raise ValueError("the payload is not an .npz archive")
-        with npz:
-            loaded = {name: npz[name] for name in npz.files}
+        loaded = {}
+        with zipfile.ZipFile(io.BytesIO(payload)) as archive:
+            infos = archive.infolist()
+            if len(infos) > MAX_MEMBERS:
+                raise ValueError(f"the archive has {len(infos)} members; at most {MAX_MEMBERS} are allowed")
+            for info in infos:
+                name = _member_name(info, loaded)
+                loaded[name] = _read_member(archive, info)
         if _META_MEMBER not in loaded:
             raise ValueError(f"the archive has no {_META_MEMBER} member")
         meta_array = loaded.pop(_META_MEMBER)
         if meta_array.dtype != np.uint8 or meta_array.ndim != 1:
             raise ValueError(f"{_META_MEMBER} has dtype {meta_array.dtype} and shape {meta_array.shape}")
-        meta = json.loads(meta_array.tobytes().decode("utf-8"), parse_constant=_refuse_constant)
+        meta = decode_json(meta_array.tobytes())
         if not isinstance(meta, dict):
             raise ValueError(f"meta is a {type(meta).__name__}, not a dict")
-        for name, array in loaded.items():
-            if array.dtype.kind not in _ARRAY_KINDS or array.dtype.fields is not None:
-                raise ValueError(f"array {name!r} has dtype {array.dtype}")
     except Exception as exc:  # any parser failure on a checksum-valid file: report it, never half-load
         raise CheckpointError(
             f"checkpoint {path!r} has a valid checksum but an unreadable payload "
-            f"({type(exc).__name__}: {exc})"
+            f"({type(exc).__name__}: {_short(exc)})"
         ) from exc
     return meta, loaded
 
 
-def _refuse_constant(name: str):
-    raise ValueError(f"JSON constant {name} is not allowed")
+def _member_name(info: zipfile.ZipInfo, loaded: dict) -> str:
+    if info.compress_type != zipfile.ZIP_STORED:
+        raise ValueError(f"member {info.filename!r} uses compression method {info.compress_type}; "
+                         "gridbias writes members uncompressed only")
+    if info.file_size != info.compress_size:
+        raise ValueError(f"member {info.filename!r} declares {info.file_size} bytes but stores "
+                         f"{info.compress_size}")
+    stem = info.filename[:-4] if info.filename.endswith(".npy") else None
+    if stem is None or not (stem == _META_MEMBER or _NAME_RE.fullmatch(stem)):
+        raise ValueError(f"member name {info.filename[:80]!r} is not one gridbias writes")
+    if stem in loaded:
+        raise ValueError(f"member {info.filename!r} appears twice")
+    return stem
+
+
+def _read_member(archive: zipfile.ZipFile, info: zipfile.ZipInfo) -> np.ndarray:
+    """One array, after checking that its header's shape and dtype fill exactly the member's bytes."""
+    with archive.open(info) as member:
+        version = np.lib.format.read_magic(member)
+        if version == (1, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_1_0(member, max_header_size=_MAX_NPY_HEADER)
+        elif version == (2, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_2_0(member, max_header_size=_MAX_NPY_HEADER)
+        else:
+            raise ValueError(f"member {info.filename!r} has .npy format version {version}")
+        if dtype.kind not in _ARRAY_KINDS or dtype.fields is not None or dtype.shape != () or dtype.hasobject:
+            raise ValueError(f"member {info.filename!r} has dtype {dtype}")
+        n_items = math.prod(shape)
+        data_size = n_items * dtype.itemsize
+        if member.tell() + data_size != info.file_size:
+            raise ValueError(f"member {info.filename!r}: shape {shape} of {dtype} needs {data_size} bytes, "
+                             f"the member holds {info.file_size - member.tell()}")
+        data = bytearray(data_size)
+        if member.readinto(data) != data_size:
+            raise ValueError(f"member {info.filename!r} is shorter than its header says")
+    return np.frombuffer(data, dtype=dtype).reshape(shape, order="F" if fortran else "C")
+

@@ -38,7 +38,7 @@ from .exports import (
     CVDisplay,
     profile_bytes,
     surface_bytes,
-    write_file,
+    write_files,
 )
 from .progress import ProgressLine
 from .runs import load_run, log_column, read_log, run_frames
@@ -89,10 +89,16 @@ def _fmt(x, digits=4) -> str:
 
 
 # -------------------------------------------------------------------------------------------- outputs
-def _check_outputs(paths, allowed, option):
-    """Validate output paths up front (extension, existing folder); return [(path, format)]."""
+def _check_outputs(paths, allowed, option, inputs=()):
+    """Check outputs up front (extension, folder, never an input or twice one file); [(path, format)]."""
+    from ._files import same_file
+
     checked = []
     for path in paths:
+        for other in [*inputs, *(p for p, _ in checked)]:
+            if same_file(path, other):
+                raise CommandError(f"{option} {path!r} is the same file as {other!r}: a command never writes over "
+                                   "a file it reads or writes twice; choose another output name")
         ext = os.path.splitext(path)[1].lower().lstrip(".")
         if ext not in allowed:
             raise CommandError(f"{option} {path!r}: the file type is taken from the extension, which must be "
@@ -223,7 +229,7 @@ def _cmd_inspect(args) -> int:
 def _cmd_export(args) -> int:
     from . import analysis
 
-    outputs = _check_outputs(args.outputs, TABLE_FORMATS + FIGURE_FORMATS, "output")
+    outputs = _check_outputs(args.outputs, TABLE_FORMATS + FIGURE_FORMATS, "output", [args.checkpoint])
     run = load_run(args.checkpoint)
     bias = run.bias
     if bias.n_hills == 0:
@@ -249,10 +255,9 @@ def _cmd_export(args) -> int:
     basins = None
     if any(fmt in FIGURE_FORMATS for _, fmt in outputs):
         basins = analysis.find_basins(bias.grid, surface.free_energy, bias.kT)
-    for path, fmt in outputs:
-        data = surface_bytes(surface, fmt, names=run.names, units=run.units, angle_unit=args.angle_unit,
-                             basins=basins)
-        write_file(path, data)
+    write_files([(path, surface_bytes(surface, fmt, names=run.names, units=run.units, angle_unit=args.angle_unit,
+                                      basins=basins)) for path, fmt in outputs])  # all or none
+    for path, _ in outputs:
         print(f"wrote {path}")
     what = f"{surface.n_hills:,} hills" + (f", t = {surface.time:g} ps" if np.isfinite(surface.time) else "")
     print(f"free-energy surface of {run.path} ({what}), kJ/mol, minimum 0")
@@ -294,7 +299,8 @@ def _edges(values, column, dihedral, bins, given, show_scale):
 def _cmd_reweight(args) -> int:
     from . import analysis
 
-    outputs = _check_outputs(args.outputs or [], TABLE_FORMATS + FIGURE_FORMATS, "--output")
+    outputs = _check_outputs(args.outputs or [], TABLE_FORMATS + FIGURE_FORMATS, "--output",
+                             [args.checkpoint, args.log])
     if len(args.along) > 2:
         raise CommandError(f"--along takes one or two columns, got {len(args.along)}: "
                            f"{', '.join(args.along)}")
@@ -304,6 +310,9 @@ def _cmd_reweight(args) -> int:
         bins = bins * d
     if len(bins) != d or min(bins) < 2:
         raise CommandError(f"--bins: give one number >= 2, or one per --along column ({d}), got {args.bins}")
+    if math.prod(bins) > MAX_BINS_TOTAL:
+        raise CommandError(f"--bins {' '.join(map(str, bins))} gives {math.prod(bins):,} bins; at most "
+                           f"{MAX_BINS_TOTAL:,} in all")
     if args.burn_in is not None and args.method != "final":
         raise CommandError("--burn-in applies to --method final only (the 'offset' method uses every "
                            f"frame); add --method final or leave out --burn-in {args.burn_in:g}")
@@ -353,8 +362,9 @@ def _cmd_reweight(args) -> int:
         finite = np.isfinite(profile.free_energy)
         print(f"  {finite.sum()} of {finite.size} bins reached; F up to {np.nanmax(profile.free_energy):.4g} "
               f"kJ/mol, median error {np.nanmedian(profile.error[finite]):.3g} kJ/mol")
-    for path, fmt in outputs:
-        write_file(path, profile_bytes(profile, fmt, units=units, angle_unit=args.angle_unit))
+    write_files([(path, profile_bytes(profile, fmt, units=units, angle_unit=args.angle_unit))
+                 for path, fmt in outputs])  # all or none
+    for path, _ in outputs:
         print(f"wrote {path}")
     return EXIT_OK
 
@@ -392,6 +402,17 @@ def _option_type(convert, allowed, expected, malformed):
 _fraction = _option_type(float, lambda x: 0 < x <= 1, "a number in (0, 1]", "a number between 0 and 1")
 _positive = _option_type(float, lambda x: math.isfinite(x) and x > 0, "a positive number", "a positive number")
 _count = _option_type(int, lambda n: n >= 1, "a whole number >= 1", "a whole number")
+_finite = _option_type(float, math.isfinite, "a finite number", "a number")
+_burn_in = _option_type(float, lambda x: 0 <= x < 1, "a number in [0, 1)", "a number between 0 and 1")
+
+
+# Bounds of the options that size arrays or work, far above any useful value (a typo must not exhaust the
+# machine): bins per column and in all, moments replayed, demo ns (1 us: days anywhere), OpenMM's 32-bit seeds.
+MAX_BINS, MAX_BINS_TOTAL, MAX_POINTS, MAX_LENGTH_NS, MAX_SEED = 5_000, 4_000_000, 1_000, 1_000.0, 2**31 - 1
+
+
+def _count_upto(limit, why):
+    return _option_type(int, lambda n: 1 <= n <= limit, f"a whole number in 1..{limit:,} ({why})", "a whole number")
 
 
 def _names(text):
@@ -449,12 +470,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quick", action="store_true", help="a shorter run (about a fifth of the length)")
     p.add_argument("--out", default="gridbias-demo", metavar="DIR",
                    help="results folder (default ./gridbias-demo); each mode writes its own subfolder")
-    p.add_argument("--length", type=_positive, metavar="NS",
+    p.add_argument("--length", metavar="NS",
+                   type=_option_type(float, lambda x: 0 < x <= MAX_LENGTH_NS,
+                                     f"a number of ns in (0, {MAX_LENGTH_NS:g}]", "a number"),
                    help="simulated time in ns, instead of the mode's default (e.g. 0.002 for a smoke test)")
     p.add_argument("--platform", default="auto",
                    choices=("auto", "Reference", "CPU", "CUDA", "OpenCL", "HIP"),
                    help="OpenMM platform; 'auto' times the available ones briefly and takes the fastest")
-    p.add_argument("--seed", type=_count, default=2024, metavar="N",
+    p.add_argument("--seed", type=_count_upto(MAX_SEED, "a 32-bit seed"), default=2024, metavar="N",
                    help="random seed for velocities and the thermostat (default 2024)")
     p.add_argument("--fresh", action="store_true",
                    help="discard this mode's earlier results in --out and start again")
@@ -485,7 +508,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-height", type=_fraction, default=0.05, metavar="FRACTION",
                    help="well-tempered: recent hills must be at most this fraction of the initial height "
                         "(default 0.05)")
-    p.add_argument("--points", type=_count, default=40, metavar="N",
+    p.add_argument("--points", type=_count_upto(MAX_POINTS, "each one is a replay of the hills"), default=40,
+                   metavar="N",
                    help="moments of the run at which the basin differences are computed (default 40)")
     p.set_defaults(handler=_cmd_inspect)
 
@@ -503,7 +527,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("outputs", nargs="+", metavar="OUTPUT",
                    help="files to write: .csv, .npz, .png, .svg, .pdf")
     when = p.add_mutually_exclusive_group()
-    when.add_argument("--time", type=float, metavar="PS",
+    when.add_argument("--time", type=_finite, metavar="PS",
                       help="the surface as it was at this simulated time, ps (default: the end)")
     when.add_argument("--hills", type=_count, metavar="N", help="the surface from the first N hills")
     _add_angle_unit(p)
@@ -523,14 +547,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("log", metavar="CVLOG", help="the run's CV log (.gbl)")
     p.add_argument("--along", nargs="+", required=True, metavar="COLUMN",
                    help="one or two log columns to compute the free energy along")
-    p.add_argument("--bins", type=_count, nargs="+", metavar="N",
+    p.add_argument("--bins", type=_count_upto(MAX_BINS, "bins per column"), nargs="+", metavar="N",
                    help="bins per column (default 60 for one column, 36 x 36 for two)")
-    p.add_argument("--range", type=float, nargs=2, action="append", metavar=("LOW", "HIGH"),
+    p.add_argument("--range", type=_finite, nargs=2, action="append", metavar=("LOW", "HIGH"),
                    help="histogram range of a column, once per column in --along order (default: -180..180 "
                         "deg for a dihedral CV, else the data's range)")
     p.add_argument("--method", choices=("offset", "final"), default="offset",
                    help="'offset': c(t) weights (default); 'final': final-bias weights")
-    p.add_argument("--burn-in", type=float, metavar="FRACTION",
+    p.add_argument("--burn-in", type=_burn_in, metavar="FRACTION",
                    help=f"with --method final only: fraction of the run left out at its start (default "
                         f"{DEFAULT_BURN_IN_FRACTION:g})")
     p.add_argument("--output", dest="outputs", nargs="+", metavar="FILE",

@@ -41,8 +41,18 @@ from typing import NamedTuple
 
 import numpy as np
 
-from ._files import AtomicFile, describe_foreign, encode_json, lock_open_file, reason, write_all
-from .errors import CVLogError, ParameterError
+from ._files import (
+    _HELD,
+    AtomicFile,
+    _short,
+    decode_json,
+    describe_foreign,
+    encode_json,
+    lock_open_file,
+    reason,
+    write_all,
+)
+from .errors import CVLogError, ParameterError, WriteError
 
 __all__ = ["MAGIC", "FORMAT_VERSION", "HEADER_SIZE", "CVLog", "CVLogWriter", "read_cvlog"]
 
@@ -188,13 +198,15 @@ def _read_header(fd: int, path: str) -> _Header:
     if hashlib.sha256(head[:32] + rest).digest() != digest:
         raise CVLogError(f"CV log {path!r} has a damaged header: it fails its SHA-256 checksum")
     try:
-        text = json.loads(rest[:text_len].decode("utf-8"))
+        text = decode_json(rest[:text_len])
+        if not isinstance(text, dict) or set(text) != {"columns", "units", "metadata"}:
+            raise ValueError("the header is not {columns, units, metadata}")
         columns, units, metadata = text["columns"], text["units"], text["metadata"]
         _check_columns(columns, units)
         if len(columns) != m or not isinstance(metadata, dict) or rest[text_len:].strip(b"\x00"):
             raise ValueError("inconsistent header fields")
-    except (ValueError, KeyError, TypeError, ParameterError) as exc:
-        raise CVLogError(f"CV log {path!r} has a damaged header ({type(exc).__name__}: {exc})") from exc
+    except (ValueError, KeyError, TypeError) as exc:  # ParameterError is a ValueError
+        raise CVLogError(f"CV log {path!r} has a damaged header ({type(exc).__name__}: {_short(exc)})") from exc
     return _Header(tuple(columns), tuple(units), metadata, data_offset)
 
 
@@ -206,7 +218,10 @@ def _check_columns(columns, units) -> None:
     for name in columns:
         if not isinstance(name, str) or not name:
             raise ParameterError(f"column names must be non-empty str, got {name!r} in columns {columns!r}")
-    duplicates = sorted({name for name in columns if columns.count(name) > 1})
+    seen, repeated = set(), set()
+    for name in columns:  # linear in the number of columns
+        (repeated if name in seen else seen).add(name)
+    duplicates = sorted(repeated)
     if duplicates:
         raise ParameterError(f"column names must be unique; repeated: {duplicates}")
     if isinstance(units, str) or not isinstance(units, (list, tuple)) or len(units) != len(columns):
@@ -334,7 +349,7 @@ class CVLogWriter:
                 os.ftruncate(fd, self._data_offset + self._n_records * self._record_size)
             except OSError:
                 self._close_quietly()  # cannot restore record alignment: refuse further writes
-            raise CVLogError(f"could not append to CV log {self.path!r}: {reason(exc)}") from exc
+            raise WriteError(f"could not append to CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
         self._n_records += array.shape[0]
 
     def flush(self) -> None:
@@ -343,7 +358,7 @@ class CVLogWriter:
         try:
             os.fsync(fd)
         except OSError as exc:
-            raise CVLogError(f"could not flush CV log {self.path!r}: {reason(exc)}") from exc
+            raise WriteError(f"could not flush CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
 
     def close(self) -> None:
         """Flush and close (idempotent)."""
@@ -393,7 +408,7 @@ class CVLogWriter:
                 os.ftruncate(fd, self._data_offset + first_drop * self._record_size)
                 n_kept = first_drop
         except OSError as exc:
-            raise CVLogError(f"could not truncate CV log {self.path!r}: {reason(exc)}") from exc
+            raise WriteError(f"could not truncate CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
         self._n_records = n_kept
         return n - n_kept
 
@@ -415,7 +430,14 @@ class CVLogWriter:
 
     def _close_quietly(self) -> None:
         fd, self._fd = self._fd, None
+        _HELD.discard(self)
         os.close(fd)
+
+    def _drop_after_fork(self) -> None:
+        """In a forked child: close the inherited copy, so the writer's lock ends with the writer."""
+        fd, self._fd = self._fd, None
+        if fd is not None:
+            os.close(fd)
 
     def _header_bytes(self, metadata: dict) -> bytes:
         text = encode_json({"columns": list(self.columns), "units": list(self.units), "metadata": metadata},
@@ -428,7 +450,7 @@ class CVLogWriter:
         """Create the file with its header atomically (a crash leaves no file or a complete header).
 
         Unlike a rename, the final link never replaces a log another writer created meanwhile."""
-        with AtomicFile(self.path, what="CV log", error=CVLogError, verb="create", replace=False) as f:
+        with AtomicFile(self.path, what="CV log", verb="create", replace=False) as f:
             f.write(self._header_bytes(metadata))
 
     def _open(self, metadata) -> None:
@@ -437,7 +459,7 @@ class CVLogWriter:
             try:
                 fd = os.open(self.path, os.O_RDWR | os.O_APPEND)
             except OSError as exc:
-                raise CVLogError(f"could not open CV log {self.path!r}: {reason(exc)}") from exc
+                raise WriteError(f"could not open CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
             try:
                 _lock(fd, self.path)
                 same = os.path.samestat(os.fstat(fd), os.stat(self.path))
@@ -458,11 +480,12 @@ class CVLogWriter:
                 os.ftruncate(fd, header.data_offset + body - partial)
         except OSError as exc:
             os.close(fd)
-            raise CVLogError(f"could not open CV log {self.path!r}: {reason(exc)}") from exc
+            raise WriteError(f"could not open CV log {self.path!r}: {reason(exc)}", path=self.path) from exc
         except BaseException:
             os.close(fd)
             raise
         self._fd = fd
+        _HELD.add(self)
         self.metadata = header.metadata
         self._data_offset = header.data_offset
         self._n_records = body // self._record_size
@@ -474,6 +497,8 @@ class CVLogWriter:
             differences.append(f"columns: the file has {list(header.columns)}, given {list(self.columns)}")
         elif header.units != self.units:
             differences.append(f"units: the file has {list(header.units)}, given {list(self.units)}")
+        if metadata is not None and "run_id" not in header.metadata:  # a log from before run ids
+            metadata = {k: v for k, v in metadata.items() if k != "run_id"}
         if metadata is not None and metadata != header.metadata:
             keys = sorted(k for k in set(metadata) | set(header.metadata)
                           if metadata.get(k, _MISSING) != header.metadata.get(k, _MISSING))
@@ -481,6 +506,13 @@ class CVLogWriter:
             given = {k: metadata.get(k, "<missing>") for k in keys}
             differences.append(f"metadata: the file has {in_file}, given {given}")
         if differences:
+            theirs = header.metadata.get("run_id")
+            if metadata is not None and theirs is not None and metadata.get("run_id") not in (None, theirs):
+                raise CVLogError(
+                    f"CV log {self.path!r} belongs to another run (run id {theirs} in the file, "
+                    f"{metadata['run_id']} here): to continue that run, restore it first (link.restore); "
+                    "otherwise use a new log"
+                )
             raise CVLogError(
                 f"CV log {self.path!r} exists with a different header ({'; '.join(differences)}); "
                 "use another path or the same columns, units and metadata"
@@ -492,7 +524,7 @@ class CVLogWriter:
         The new file is locked before it is put in place, so no other writer can claim it in between."""
         header = os.pread(self._fd, self._data_offset, 0)
         n_kept = 0
-        with AtomicFile(self.path, what="CV log", error=CVLogError, verb="truncate",
+        with AtomicFile(self.path, what="CV log", verb="truncate",
                         flags=os.O_RDWR | os.O_APPEND, keep_open=True) as f:
             os.fchmod(f.fd, stat.S_IMODE(os.fstat(self._fd).st_mode))
             _lock(f.fd, self.path)
@@ -503,7 +535,7 @@ class CVLogWriter:
                 f.write(kept)
                 n_kept += kept.shape[0]
         os.close(self._fd)  # the new file is locked through its own descriptor already
-        self._fd = f.fd
+        self._fd = f.fd  # (registered in _HELD already, as this writer)
         return n_kept
 
 

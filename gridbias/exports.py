@@ -20,7 +20,8 @@ import numpy as np
 from .errors import OutputError, ParameterError
 
 __all__ = ["TABLE_FORMATS", "FIGURE_FORMATS", "SURFACE_NPZ_KEYS", "CVDisplay", "surface_bytes",
-           "surface_figure", "profile_bytes", "shown_profile", "figure_bytes", "require_plots", "write_file"]
+           "surface_figure", "profile_bytes", "shown_profile", "figure_bytes", "require_plots", "write_file",
+           "write_files"]
 
 #: Arrays of a surface's .npz file besides ``axis0, axis1, ...`` (the node coordinates, CV units).
 SURFACE_NPZ_KEYS = ("free_energy", "names", "units", "periodic", "lower", "upper", "kT", "bias_factor",
@@ -204,3 +205,25 @@ def write_file(path, data: bytes) -> None:
     from ._files import write_atomically
 
     write_atomically(path, data, what="file", error=OutputError)
+
+
+def write_files(items) -> None:
+    """Write every ``(path, data)`` atomically, or none: when one fails, the files this call created are
+    removed again (files that existed before keep their old content or the new one, whole), and the
+    OutputError of the failure is raised."""
+    import os
+
+    created = []
+    try:
+        for path, data in items:
+            existed = os.path.exists(path)
+            write_file(path, data)
+            if not existed:
+                created.append(path)
+    except BaseException:
+        for path in created:
+            try:
+                os.unlink(path)
+            except OSError:
+                pass
+        raise

@@ -2,17 +2,31 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from .errors import GridError
 
-__all__ = ["Grid", "MAX_DIMENSIONS"]
+__all__ = ["Grid", "MAX_DIMENSIONS", "MEMORY_BUDGET"]
 
 MAX_DIMENSIONS = 3
 
+#: Largest table a bias on a grid may hold, bytes: the node values and their spline derivatives
+#: (``8 * 2**d`` bytes per node). 4 GiB allows 400^3 nodes in 3-D and 11,000^2 in 2-D (re-sending such a
+#: table to OpenMM already takes about a minute); larger grids are refused before anything is allocated
+#: (a typo in ``bins`` must not exhaust the machine's memory).
+MEMORY_BUDGET = 4 * 2**30
+
+# Fewest float64 steps an axis must span: a spacing below ~1e-12 of the coordinates cannot be resolved.
+_RESOLUTION = 1e-12
+
 
 def _as_vector(name, value, ndim=None, dtype=float):
-    arr = np.atleast_1d(np.asarray(value, dtype=dtype))
+    try:
+        arr = np.atleast_1d(np.asarray(value, dtype=dtype))
+    except (TypeError, ValueError, OverflowError):
+        raise GridError(f"{name} must be a number or a flat sequence of numbers, got {str(value)[:80]!r}") from None
     if arr.ndim != 1:
         raise GridError(f"{name} must be a number or a flat sequence, got shape {arr.shape}")
     if ndim is not None and arr.shape[0] != ndim:
@@ -46,33 +60,45 @@ class Grid:
         if not 1 <= ndim <= MAX_DIMENSIONS:
             raise GridError(f"lower has {ndim} entries; gridbias supports 1 to {MAX_DIMENSIONS} CVs")
         upper_d = _as_vector("upper", upper, ndim)
-        bins_raw = np.atleast_1d(np.asarray(bins))
-        if bins_raw.ndim != 1 or bins_raw.shape[0] != ndim:
-            raise GridError(f"bins must have {ndim} entries (one per axis), got {bins!r}")
+        try:
+            bins_raw = np.atleast_1d(np.asarray(bins))
+        except (TypeError, ValueError, OverflowError):
+            bins_raw = np.empty(0)
+        if bins_raw.ndim != 1 or bins_raw.shape[0] != ndim or bins_raw.dtype.kind not in "iuf":
+            raise GridError(f"bins must be {ndim} integers >= 2 (one per axis), got {str(bins)[:80]}")
         if periodic is None:
             periodic_d = np.zeros(ndim, dtype=bool)
         else:
             periodic_d = np.atleast_1d(np.asarray(periodic))
             if periodic_d.ndim != 1 or periodic_d.shape[0] != ndim:
                 raise GridError(f"periodic must have {ndim} entries (one per axis), got {periodic!r}")
-            if not all(isinstance(p, (bool, np.bool_)) for p in periodic_d.tolist()):
+            if not all(isinstance(p, bool) for p in periodic_d.tolist()):
                 raise GridError(f"periodic must hold True/False per axis, got {periodic!r}")
             periodic_d = periodic_d.astype(bool)
         bins_d = np.empty(ndim, dtype=np.int64)
         for i in range(ndim):
-            lo, up, b = lower_d[i], upper_d[i], bins_raw[i]
+            lo, up, b = float(lower_d[i]), float(upper_d[i]), float(bins_raw[i])
             if not (np.isfinite(lo) and np.isfinite(up)):
                 raise GridError(f"axis {i}: lower ({lo}) and upper ({up}) must be finite")
             if not up > lo:
                 raise GridError(f"axis {i}: upper ({up}) must exceed lower ({lo})")
-            if isinstance(b, (bool, np.bool_)) or not float(b).is_integer():
-                raise GridError(f"axis {i}: bins must be an integer >= 2, got {b!r}")
-            if int(b) < 2:
-                raise GridError(f"axis {i}: bins must be an integer >= 2, got {int(b)}")
+            if not math.isfinite(up - lo):
+                raise GridError(f"axis {i}: the span upper - lower ({up} - {lo}) overflows a float; use a "
+                                "span a float can hold")
+            if not (math.isfinite(b) and b.is_integer() and 2 <= b <= 2**40):
+                raise GridError(f"axis {i}: bins must be an integer >= 2, got {bins_raw[i]:.6g}")
             bins_d[i] = int(b)
+            if (up - lo) / bins_d[i] <= _RESOLUTION * max(abs(lo), abs(up)):
+                raise GridError(f"axis {i}: the spacing ({up} - {lo}) / {int(b)} is too fine for float64 "
+                                f"coordinates of that size; use fewer bins or a smaller span")
         for arr in (lower_d, upper_d, bins_d, periodic_d):
             arr.setflags(write=False)
         self._lower, self._upper, self._bins, self._periodic = lower_d, upper_d, bins_d, periodic_d
+        if self.table_bytes > MEMORY_BUDGET:
+            raise GridError(
+                f"bins {bins_d.tolist()} give {self.size:,} nodes, whose bias table needs "
+                f"{self.table_bytes:,} bytes ({self.table_bytes / 2**30:.3g} GiB); the memory budget is "
+                f"{MEMORY_BUDGET / 2**30:g} GiB (gridbias.grid.MEMORY_BUDGET): use fewer bins")
 
     # -- specification -------------------------------------------------------------------------
     @property
@@ -118,7 +144,12 @@ class Grid:
     @property
     def size(self) -> int:
         """Total number of nodes."""
-        return int(np.prod(self.shape))
+        return math.prod(self.shape)
+
+    @property
+    def table_bytes(self) -> int:
+        """Bytes of a bias table on this grid: node values and spline derivatives, ``8 * 2**d`` per node."""
+        return 8 * 2**self.ndim * self.size
 
     @property
     def axes(self) -> list:
@@ -162,6 +193,9 @@ class Grid:
 
     @classmethod
     def from_dict(cls, spec: dict) -> "Grid":
+        """The grid `to_dict` described; GridError for anything else."""
+        if not isinstance(spec, dict) or not {"lower", "upper", "bins", "periodic"} <= set(spec):
+            raise GridError(f"a grid description needs lower, upper, bins and periodic, got {str(spec)[:80]}")
         return cls(spec["lower"], spec["upper"], spec["bins"], spec["periodic"])
 
     def describe_difference(self, other: "Grid") -> str:

@@ -25,7 +25,8 @@ import numpy as np
 from .errors import CheckpointError, CVLogError, ParameterError
 
 __all__ = ["CHECKPOINT_KIND", "CHECKPOINT_VERSION", "RunCheckpoint", "write_run_checkpoint",
-           "read_run_checkpoint", "Run", "load_run", "read_log", "RunFrames", "run_frames", "log_column"]
+           "read_run_checkpoint", "Run", "load_run", "read_log", "RunFrames", "run_frames", "log_column",
+           "check_pair"]
 
 #: The ``kind`` of a run checkpoint (gridbias.checkpoint container).
 CHECKPOINT_KIND = "gridbias.openmm-run"
@@ -131,36 +132,107 @@ def read_run_checkpoint(path) -> RunCheckpoint:
     return _parse_run_checkpoint(path, meta, arrays)
 
 
+_MAX_PARTICLES = 10**9
+_MAX_STEP = 2**62
+_FIELDS = {"version", "bias", "cvs", "labels", "n_particles", "platform", "openmm_version", "step", "time_ps",
+           "engine", "written"}
+_ENGINE_FIELDS = {"route", "pending_hills", "n_folded", "n_pending", "name"}
+
+
 def _parse_run_checkpoint(path, meta, arrays) -> RunCheckpoint:
-    try:
-        version = int(meta["version"])
-        if version > CHECKPOINT_VERSION:
-            raise CheckpointError(f"{path}: written by a newer gridbias (format {meta['version']}); upgrade")
-        bias_state = meta["bias"]
-        engine = meta["engine"]
-        if not isinstance(bias_state, dict) or not isinstance(engine, dict):
-            raise TypeError("'bias' and 'engine' must be JSON objects")
-        engine = dict(engine)
-        engine["n_folded"] = int(engine["n_folded"])
-        cvs = tuple(meta["cvs"])
-        labels = tuple(str(x) for x in meta["labels"]) if meta.get("labels") else tuple(
-            f"cv{i}" for i in range(len(cvs)))
-        checkpoint = RunCheckpoint(
-            path=path, step=int(meta["step"]), time=float(meta["time_ps"]), platform=str(meta["platform"]),
-            labels=labels, cvs=cvs, n_particles=int(meta["n_particles"]), bias_state=bias_state,
-            bias_arrays={k[len("bias."):]: v for k, v in arrays.items() if k.startswith("bias.")},
-            engine=engine, folded_values=arrays["engine.folded_values"],
-            md_checkpoint=arrays["md.checkpoint"].tobytes(), positions=arrays["md.positions"],
-            velocities=arrays["md.velocities"], box=arrays["md.box"],
-            openmm_version=str(meta.get("openmm_version", "")), written=str(meta.get("written", "")),
-            version=version)
-    except CheckpointError:
-        raise
-    except KeyError as exc:
-        raise CheckpointError(f"{path}: checkpoint is incomplete (missing {exc})") from exc
-    except (TypeError, ValueError, AttributeError) as exc:
-        raise CheckpointError(f"{path}: checkpoint metadata is malformed ({type(exc).__name__}: {exc})") from exc
-    return checkpoint
+    """The one check of a run checkpoint before anything uses it: every field's type and range, every
+    array's dtype and shape against the metadata, a finite MD state. (The bias inside is checked by
+    ``GridBias.from_state``.)"""
+    parts = _check_run_checkpoint(path, meta, arrays)
+    return RunCheckpoint(
+        path=path, step=parts["step"], time=parts["time_ps"], platform=meta["platform"],
+        labels=tuple(parts["labels"]), cvs=tuple(parts["cvs"]), n_particles=parts["n_particles"],
+        bias_state=parts["bias_meta"], bias_arrays=parts["bias_arrays"], engine=dict(meta["engine"]),
+        folded_values=parts["folded"], md_checkpoint=arrays["md.checkpoint"].tobytes(),
+        positions=arrays["md.positions"], velocities=arrays["md.velocities"], box=arrays["md.box"],
+        openmm_version=meta["openmm_version"], written=meta["written"], version=meta["version"])
+
+
+def _fail(path, text):
+    raise CheckpointError(f"run checkpoint {path!r}: {text}")
+
+
+def _int(path, where, value, low, high):
+    if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+        _fail(path, f"{where} must be an integer in {low}..{high}, got {str(value)[:60]!r}")
+    return value
+
+
+def _str(path, where, value, limit=200):
+    if not isinstance(value, str) or len(value) > limit:
+        _fail(path, f"{where} must be a text of at most {limit} characters")
+    return value
+
+
+def _check_run_checkpoint(path: str, meta: dict, arrays: dict) -> dict:
+    """Check a run checkpoint's metadata and arrays; return its parts.
+
+    Returns
+    -------
+    dict with ``bias_meta``, ``bias_arrays`` (the bias state, for ``GridBias.from_state``), ``cvs``,
+    ``labels``, ``n_particles``, ``step``, ``time_ps``, ``platform``, ``folded`` (grid shape), ``n_folded``.
+
+    Raises
+    ------
+    CheckpointError
+        Naming the path and the first field that is missing, of the wrong type or out of range.
+    """
+    missing = _FIELDS - set(meta)
+    if missing:
+        _fail(path, f"the checkpoint is incomplete (missing {sorted(missing)})")
+    version = _int(path, "version", meta["version"], 1, 2**31)
+    if version > CHECKPOINT_VERSION:
+        raise CheckpointError(f"{path}: written by a newer gridbias (format {version}); upgrade")
+    bias_meta = meta["bias"]
+    if not isinstance(bias_meta, dict):
+        _fail(path, "bias must be a bias state (a dict)")
+    cvs, labels = meta["cvs"], meta["labels"]
+    if not isinstance(cvs, list) or not all(isinstance(c, dict) for c in cvs) or not 1 <= len(cvs) <= 3:
+        _fail(path, "cvs must be a list of 1 to 3 CV descriptions")
+    if not isinstance(labels, list) or len(labels) != len(cvs):
+        _fail(path, f"labels must be a list of {len(cvs)} names")
+    for label in labels:
+        _str(path, "labels", label, 200)
+    n_particles = _int(path, "n_particles", meta["n_particles"], 1, _MAX_PARTICLES)
+    step = _int(path, "step", meta["step"], 0, _MAX_STEP)
+    time_ps = meta["time_ps"]
+    if isinstance(time_ps, bool) or not isinstance(time_ps, (int, float)) or not math.isfinite(time_ps):
+        _fail(path, f"time_ps must be a finite number, got {str(time_ps)[:60]!r}")
+    for key in ("platform", "openmm_version", "written"):
+        _str(path, key, meta[key])
+    engine = meta["engine"]
+    if not isinstance(engine, dict) or set(engine) != _ENGINE_FIELDS:
+        _fail(path, f"engine must hold {sorted(_ENGINE_FIELDS)}")
+    _str(path, "engine route", engine["route"])
+    _str(path, "engine name", engine["name"])
+    pending = _int(path, "engine pending_hills", engine["pending_hills"], 0, 2**31)
+    n_folded = _int(path, "engine n_folded", engine["n_folded"], 0, 2**53)
+    _int(path, "engine n_pending", engine["n_pending"], 0, pending)
+    expected = {"bias.coefficients", "bias.hill_centers", "bias.hill_heights", "bias.hill_times",
+                "engine.folded_values", *_MD_ARRAYS}
+    if set(arrays) != expected:
+        _fail(path, f"arrays are {sorted(arrays)[:10]}, expected {sorted(expected)}")
+    folded = arrays["engine.folded_values"]
+    if folded.dtype != np.float64 or not np.isfinite(folded).all():
+        _fail(path, "engine.folded_values must be finite float64 values")
+    blob = arrays["md.checkpoint"]
+    if blob.dtype != np.uint8 or blob.ndim != 1:
+        _fail(path, "md.checkpoint must be a flat uint8 array")
+    for name, shape in (("md.positions", (n_particles, 3)), ("md.velocities", (n_particles, 3)),
+                        ("md.box", (3, 3))):
+        a = arrays[name]
+        if a.dtype != np.float64 or a.shape != shape or not np.isfinite(a).all():
+            _fail(path, f"{name} must be finite float64 of shape {shape} (the metadata's {n_particles} "
+                        f"particles), got {a.shape} {a.dtype}")
+    bias_arrays = {k[len("bias."):]: v for k, v in arrays.items() if k.startswith("bias.")}
+    return {"bias_meta": bias_meta, "bias_arrays": bias_arrays, "cvs": cvs, "labels": labels,
+            "n_particles": n_particles, "step": step, "time_ps": float(time_ps), "platform": meta["platform"],
+            "folded": folded, "n_folded": n_folded}
 
 
 # -------------------------------------------------------------------------------------- any checkpoint
@@ -186,6 +258,10 @@ class Run:
     source : str
         "OpenMM run checkpoint" or "bias checkpoint".
     platform : str or None
+    run_id : str or None
+        The run's identity as the file records it (None: a file from before run ids).
+    cvs : tuple of dict or None
+        The CV definitions the file records (None: a bias checkpoint, which records none).
     """
 
     path: str
@@ -197,6 +273,8 @@ class Run:
     step: int | None
     source: str
     platform: str | None
+    run_id: str | None = None
+    cvs: tuple | None = None
 
 
 _ANGLE_KINDS = ("dihedral", "angle")
@@ -252,14 +330,15 @@ def load_run(path) -> Run:
         bias = _bias_from_state(path, checkpoint.bias_state, checkpoint.bias_arrays)
         described = [_describe_cv(s) for s in checkpoint.cvs] or [("", "")] * bias.ndim
         return Run(path, bias, checkpoint.labels, tuple(u for u, _ in described), tuple(p for _, p in described),
-                   checkpoint.time, checkpoint.step, "OpenMM run checkpoint", checkpoint.platform)
+                   checkpoint.time, checkpoint.step, "OpenMM run checkpoint", checkpoint.platform,
+                   checkpoint.bias_state.get("run_id"), checkpoint.cvs)
     if meta.get("kind") == _BIAS_KIND:
         bias = _bias_from_state(path, meta, arrays)
         times = np.asarray(bias.history.times)
         t_last = float(times[-1]) if times.size else math.nan
         d = bias.ndim
         return Run(path, bias, tuple(f"cv{i}" for i in range(d)), ("",) * d, ("",) * d, t_last, None,
-                   "bias checkpoint", None)
+                   "bias checkpoint", None, meta.get("run_id"))
     raise CheckpointError(f"checkpoint {path!r} holds no metadynamics bias (its metadata has neither a "
                           f"'bias' entry nor kind {_BIAS_KIND!r})")
 
@@ -280,11 +359,17 @@ def read_log(path, *, min_records: int = 4):
     Raises
     ------
     CVLogError
-        Missing, damaged or foreign file, or fewer than ``min_records`` complete records.
+        Missing, damaged or foreign file, metadata gridbias wrote that is impossible (a run id, temperature,
+        grid or CVs of the wrong type or range), or fewer than ``min_records`` complete records.
     """
+    from ._identity import check_log_metadata
     from .cvlog import read_cvlog
 
     log = read_cvlog(path)
+    try:
+        check_log_metadata(log.metadata)
+    except ValueError as exc:
+        raise CVLogError(f"CV log {os.fspath(path)!r} has impossible metadata: {exc}") from exc
     if log.n_records < min_records:
         raise CVLogError(f"CV log {os.fspath(path)!r} holds {log.n_records} complete records; at least "
                          f"{min_records} are needed")
@@ -302,6 +387,26 @@ def log_column(log, name: str, what: str = "column") -> np.ndarray:
         raise CVLogError(f"{what}: column {name!r} of CV log {log.path!r} holds {values[bad]} at record "
                          f"{bad}; every value must be finite")
     return values
+
+
+def check_pair(run: Run, log) -> None:
+    """Refuse a CV log that is not ``run``'s own (CVLogError naming both files and what differs).
+
+    Compared where both files record them: the run id, the CVs, the grid, the temperature and the bias
+    factor. Files from before run ids are still compared on everything else.
+    """
+    from ._identity import check_log_metadata, describe_mismatch
+
+    try:
+        check_log_metadata(log.metadata)
+    except ValueError as exc:
+        raise CVLogError(f"CV log {log.path!r} has impossible metadata: {exc}") from exc
+    b = run.bias
+    facts = {"run_id": run.run_id, "cvs": None if run.cvs is None else list(run.cvs), "grid": b.grid,
+             "temperature": b.temperature, "bias_factor": b.bias_factor}
+    problem = describe_mismatch(run.path, facts, log.path, log.metadata)
+    if problem:
+        raise CVLogError(problem)
 
 
 class RunFrames(NamedTuple):
@@ -333,8 +438,11 @@ def run_frames(run: Run, log, cv_columns=None, time_column: str = "time") -> Run
     ParameterError
         The wrong number of ``cv_columns``.
     CVLogError
-        A missing column, a non-finite value, times that go back, or fewer than 4 frames left.
+        The log belongs to another run (``gridbias._identity.describe_mismatch``: run id, CVs, grid,
+        temperature or bias factor differ, naming both files), a missing column, a non-finite value, times
+        that go back, or fewer than 4 frames left.
     """
+    check_pair(run, log)
     names = list(cv_columns or run.names)
     if len(names) != run.bias.ndim:
         raise ParameterError(f"cv_columns: give {run.bias.ndim} CV column names (the checkpoint has "

@@ -55,14 +55,13 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import sys
 import warnings
 
 import numpy as np
 
-from .bias import GridBias
-from .errors import CheckpointError, GridBiasError, ParameterError
+from .bias import GridBias, _time_value
+from .errors import CheckpointError, GridBiasError, ParameterError, WriteError
 
 __all__ = ["share", "SharedBias", "WalkerSyncError", "EXCHANGE_WIDTH"]
 
@@ -163,6 +162,7 @@ def share(bias, comm=None, *, abort_on_error=True) -> "SharedBias":
                              f"{bias.n_walkers} walkers); share() a plain GridBias")
     comm = _check_comm(_mpi().COMM_WORLD if comm is None else comm)
     meta, arrays = bias.to_state()
+    meta["run_id"] = comm.bcast(meta["run_id"], root=0)  # one job, one run id: walker 0's
     shared = SharedBias._from_state_on(comm, meta, arrays, exchanges=0, abort_on_error=abort_on_error)
     return shared
 
@@ -350,7 +350,7 @@ class SharedBias(GridBias):
             ``history`` (the hills after ``n_hills`` as it was before the call).
         """
         s_d = self._point(s)
-        t = math.nan if time is None else float(time)
+        t = _time_value("time", time)
         h = self.hill_height(s_d)
         d = self.ndim
         payload = np.zeros(EXCHANGE_WIDTH - 2)
@@ -398,7 +398,7 @@ class SharedBias(GridBias):
         """Write the shared bias to ``path`` (walker 0 writes, atomically). Collective.
 
         First checks that every walker holds the same bias; returns on every walker once the file is
-        complete, or raises CheckpointError on every walker with walker 0's message. The file is a normal
+        complete, or raises WriteError on every walker with walker 0's message. The file is a normal
         bias checkpoint (``GridBias.load`` reads it for analysis) that also records the number of walkers
         and exchanges.
         """
@@ -411,11 +411,11 @@ class SharedBias(GridBias):
             try:
                 write_checkpoint(path, meta, arrays, kind=meta["kind"])
                 outcome = "ok"
-            except CheckpointError as exc:
+            except GridBiasError as exc:
                 outcome = str(exc)
         outcome = self._comm.bcast(outcome, root=0)
         if outcome != "ok":
-            raise CheckpointError(f"walker 0 could not write the shared bias: {outcome}")
+            raise WriteError(f"walker 0 could not write the shared bias: {outcome}", path=str(path))
 
     def to_state(self):
         """As ``GridBias.to_state``; ``meta["walkers"]`` adds ``{"count": n_walkers, "exchanges": ...}``."""

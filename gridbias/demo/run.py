@@ -10,7 +10,7 @@ import os
 import sys
 from dataclasses import dataclass
 
-from .._files import CheckpointLock
+from .._files import CheckpointLock, new_folders
 from ..errors import LockError, ParameterError
 from .report import analyse
 from .settings import (
@@ -98,27 +98,28 @@ def run_demo(out="gridbias-demo", settings: DemoSettings | None = None, *, fresh
     folder = os.path.join(os.fspath(out), SUBFOLDERS[settings.mode])
     if os.path.exists(folder) and not os.path.isdir(folder):
         raise ParameterError(f"out: {folder!r} exists and is not a folder")
-    os.makedirs(folder, exist_ok=True)
-    # One demo per folder: claim it before touching any file (a second run must not remove or cut the
-    # files of a live one).
-    claim = CheckpointLock(os.path.join(folder, "demo-run"))
-    try:
-        claim.acquire()
-    except LockError as exc:
-        raise LockError(f"another gridbias demo is running in {folder!r}; wait for it or stop it "
-                        f"({exc})") from None
-    try:
-        if fresh:
-            _remove_own_files(folder)
-        biased = " and ".join(settings.biased)
-        say(stream, f"gridbias demo ({settings.mode}): well-tempered metadynamics of the alanine dipeptide "
-                     f"in vacuum, biased on {biased}, {settings.length_ns:g} ns; results in {folder}")
-        completed, step, info = simulate(folder, settings, stream, progress)
-        if not completed:
-            return DemoResult(folder, False, step, "", ())
-        report, files = analyse(folder, settings, info, progress)
-    finally:
-        claim.release()
+    # A run that fails before writing anything leaves no empty folders behind.
+    with new_folders(folder):
+        # One demo per folder: claim it before touching any file (a second run must not remove or cut the
+        # files of a live one).
+        claim = CheckpointLock(os.path.join(folder, "demo-run"))
+        try:
+            claim.acquire()
+        except LockError as exc:
+            raise LockError(f"another gridbias demo is running in {folder!r}; wait for it or stop it "
+                            f"({exc})") from None
+        try:
+            if fresh:
+                _remove_own_files(folder)
+            biased = " and ".join(settings.biased)
+            say(stream, f"gridbias demo ({settings.mode}): well-tempered metadynamics of the alanine dipeptide "
+                         f"in vacuum, biased on {biased}, {settings.length_ns:g} ns; results in {folder}")
+            completed, step, info = simulate(folder, settings, stream, progress)
+            if not completed:
+                return DemoResult(folder, False, step, "", ())
+            report, files = analyse(folder, settings, info, progress)
+        finally:
+            claim.release()
     say(stream, "")
     say(stream, report)
     return DemoResult(folder, True, step, report, files)

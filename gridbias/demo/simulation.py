@@ -144,7 +144,6 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
 
     topology, positions, system = build_dipeptide()
     positions, _ = minimize(system, positions)
-    write_pdb(os.path.join(folder, START), topology, positions)
     phi_atoms, psi_atoms = backbone_dihedral_atoms(topology)
     cvs = [gbo.dihedral(*phi_atoms, name="phi")]
     if settings.mode == "2d":
@@ -160,6 +159,7 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
     link = gbo.attach(system, cvs, bias, route="cvforce" if platform == "Reference" else "compound")
     simulation = make_simulation(topology, system, positions, temperature=settings.temperature,
                                  platform=platform, seed=settings.seed)
+    write_pdb(os.path.join(folder, START), topology, positions)  # after the checks that may refuse the run
     frame_log = None
     if settings.mode == "reweight":
         frame_log = _FrameLog(frames, link, (phi_atoms, psi_atoms), settings.stride)

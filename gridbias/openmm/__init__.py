@@ -46,7 +46,7 @@ from ..walls import Wall
 from . import cvs as _cvs
 from ._units import cv_unit_name, in_md_units, is_quantity, per_cv
 from .forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
-from .link import DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
+from .link import DEFAULT_MAX_WRITE_FAILURES, BiasLink, BiasReporter
 
 __all__ = [
     "distance",
@@ -62,7 +62,7 @@ __all__ = [
     "BiasReporter",
     "DEFAULT_FORCE_GROUP",
     "DEFAULT_PENDING_HILLS",
-    "DEFAULT_MAX_CHECKPOINT_FAILURES",
+    "DEFAULT_MAX_WRITE_FAILURES",
     "PERIODIC_PADDING",
     "CHECKPOINT_KIND",
 ]
@@ -150,13 +150,21 @@ def make_bias(cvs, *, lower, upper, bins, sigma, height, temperature, bias_facto
     cvs = list(cvs)
     grid = Grid(per_cv("lower", lower, cvs), per_cv("upper", upper, cvs), bins,
                 [bool(cv.periodic) for cv in cvs])
+    if walls is None or isinstance(walls, (str, bytes, dict, Wall)) or not hasattr(walls, "__iter__"):
+        raise ParameterError(f"walls must be a sequence of gridbias.Wall or dicts (or () for none), got {walls!r}")
     converted = []
     for w in walls:
         if isinstance(w, Wall):
             converted.append(w)
             continue
+        if not isinstance(w, dict) or not isinstance(w.get("cv"), int) or not 0 <= w["cv"] < len(cvs):
+            raise ParameterError(f"each wall must be a gridbias.Wall or a dict with 'cv' (0..{len(cvs) - 1}), "
+                                 f"'bound', 'k', 'side' and optionally 'power'; got {w!r}")
         spec = dict(w)
-        cv = cvs[int(spec["cv"])]
+        missing = {"bound", "k", "side"} - set(spec)
+        if missing:
+            raise ParameterError(f"wall {w!r} is missing {sorted(missing)}")
+        cv = cvs[spec["cv"]]
         unit_name = cv_unit_name(cv) or "dimensionless"
         spec["bound"] = in_md_units(spec["bound"], name="wall bound", unit=unit_name) \
             if unit_name != "dimensionless" else float(spec["bound"])
@@ -166,7 +174,10 @@ def make_bias(cvs, *, lower, upper, bins, sigma, height, temperature, bias_facto
             power = float(spec.get("power", 2.0))
             per = getattr(unit, unit_name) ** power if unit_name != "dimensionless" else unit.dimensionless
             spec["k"] = in_md_units(spec["k"], name="wall k", unit=unit.kilojoule_per_mole / per)
-        converted.append(Wall(**spec))
+        try:
+            converted.append(Wall(**spec))
+        except TypeError as exc:  # missing or unknown keys
+            raise ParameterError(f"wall {w!r}: {exc}") from None
     return GridBias(grid, per_cv("sigma", sigma, cvs),
                     in_md_units(height, name="height", unit="kilojoule_per_mole"),
                     in_md_units(temperature, name="temperature", unit="kelvin"), bias_factor, converted)

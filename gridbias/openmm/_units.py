@@ -54,8 +54,10 @@ def in_md_units(value, *, name: str | None = None, unit: str | None = None):
     if unit is None:
         return value
     try:
+        if isinstance(value, (str, bytes, bool)):
+            raise TypeError
         return float(value)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise ParameterError(f"{name} must be a number ({unit}) or an openmm.unit quantity, "
                              f"got {value!r}") from None
 

@@ -14,20 +14,21 @@ import weakref
 
 import numpy as np
 
+from .._consistency import FULL_REPLAY_BUDGET, replay_cost
 from ..bias import GridBias
-from ..errors import BlownUpError, CheckpointError, CVLogError, ParameterError
+from ..errors import BlownUpError, CheckpointError, ParameterError, WriteError
 from ..runs import RunCheckpoint, read_run_checkpoint, write_run_checkpoint
 from ._units import in_md_units
 from .forces import require_openmm, same_object
 
-__all__ = ["BiasLink", "BiasReporter", "DEFAULT_MAX_CHECKPOINT_FAILURES"]
+__all__ = ["BiasLink", "BiasReporter", "DEFAULT_MAX_WRITE_FAILURES", "MAX_COORDINATE", "MAX_SPEED"]
 
 
-#: Checkpoints in a row that may fail to be written (disk full, I/O error) before the reporter stops the
-#: run. One or two failures are survived (a transient network file system error, space freed in time),
-#: while a disk that stays full stops the run after three checkpoint intervals of work that exist only in
-#: memory. A judgement call, not a measured optimum: set ``max_checkpoint_failures=`` to taste.
-DEFAULT_MAX_CHECKPOINT_FAILURES = 3
+#: Writes in a row of one file (checkpoint or CV log) that may fail (disk full, I/O error) before the
+#: reporter stops the run. One or two failures are survived (a transient network file system error, space
+#: freed in time), while a disk that stays full stops the run after three intervals of work that exist
+#: only in memory. A judgement call, not a measured optimum: set ``max_write_failures=`` to taste.
+DEFAULT_MAX_WRITE_FAILURES = 3
 
 _log = logging.getLogger("gridbias.openmm")
 
@@ -59,6 +60,7 @@ class BiasLink:
         self._engine_cvs = [i for i, cv in enumerate(self.cvs) if not cv.geometric]
         self._periodic_box = engine.periodic_box
         self._reporters = weakref.WeakSet()
+        self._blown_up_at = None  # step at which the run was declared blown up (cleared by restore)
 
     # -- properties -------------------------------------------------------------------------------
     bias = property(lambda self: self._bias, doc="The GridBias being applied (restore loads into it).")
@@ -153,10 +155,10 @@ class BiasLink:
 
     # -- checkpoints ------------------------------------------------------------------------------
     def reporter(self, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
-                 max_checkpoint_failures=DEFAULT_MAX_CHECKPOINT_FAILURES):
+                 max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
         """A reporter that deposits every ``stride`` steps; see :class:`BiasReporter`."""
         rep = BiasReporter(self, stride, checkpoint=checkpoint, checkpoint_every=checkpoint_every, log=log,
-                           log_every=log_every, max_checkpoint_failures=max_checkpoint_failures)
+                           log_every=log_every, max_write_failures=max_write_failures)
         self._reporters.add(rep)
         return rep
 
@@ -164,7 +166,9 @@ class BiasLink:
         """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state.
 
         The file (a run checkpoint, layout in :mod:`gridbias.runs`) is replaced atomically. Nothing is
-        written when positions or velocities are not finite (the last good file stays).
+        written (BlownUpError, the last good file stays) when positions or velocities are not finite or
+        beyond ``MAX_COORDINATE`` / ``MAX_SPEED``, nor after the run was declared blown up (until a good
+        checkpoint is restored).
         """
         openmm = require_openmm()
         context = _context_of(simulation)
@@ -172,12 +176,18 @@ class BiasLink:
         state = context.getState(getPositions=True, getVelocities=True)
         positions = np.asarray(in_md_units(state.getPositions(asNumpy=True)), dtype=float)
         velocities = np.asarray(in_md_units(state.getVelocities(asNumpy=True)), dtype=float)
-        if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
-            raise BlownUpError(f"positions or velocities are not finite at step {context.getStepCount()}: the "
-                                f"simulation has blown up; {os.fspath(path)!r} was not overwritten")
+        step = int(context.getStepCount())
+        if self._blown_up_at is not None:
+            raise BlownUpError(f"the run was declared blown up at step {self._blown_up_at}; nothing is written "
+                               f"({os.fspath(path)!r} was not touched): restore a good checkpoint first")
+        reason = blow_up_reason(positions, velocities)
+        if reason:
+            self._blown_up_at = step
+            raise BlownUpError(f"{reason} at step {step}: the simulation has blown up; {os.fspath(path)!r} was "
+                               "not written")
         bias_state, bias_arrays = self._bias.to_state()
         write_run_checkpoint(path, RunCheckpoint(
-            path=os.fspath(path), step=int(context.getStepCount()), time=float(in_md_units(state.getTime())),
+            path=os.fspath(path), step=step, time=float(in_md_units(state.getTime())),
             platform=context.getPlatform().getName(), labels=tuple(self.labels()), cvs=tuple(self.describe_cvs()),
             n_particles=self.system.getNumParticles(), bias_state=bias_state, bias_arrays=bias_arrays,
             engine={"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
@@ -209,12 +219,8 @@ class BiasLink:
             restored = getattr(self._bias, "restored", None)
             bias = (restored(checkpoint.bias_state, checkpoint.bias_arrays) if callable(restored)
                     else GridBias.from_state(checkpoint.bias_state, checkpoint.bias_arrays))
-        except CheckpointError:
-            raise
-        except KeyError as exc:
-            raise CheckpointError(f"{path}: checkpoint is incomplete (missing {exc})") from exc
-        except (TypeError, ValueError, AttributeError) as exc:
-            raise CheckpointError(f"{path}: checkpoint metadata is malformed ({type(exc).__name__}: {exc})") from exc
+        except CheckpointError as exc:
+            raise CheckpointError(f"run checkpoint {os.fspath(path)!r}: {exc}") from exc
         folded, n_folded = checkpoint.folded_values, checkpoint.engine["n_folded"]
         diff = self._bias.describe_difference(bias)
         if diff:
@@ -222,6 +228,11 @@ class BiasLink:
         if folded.shape != tuple(bias.grid.shape) or not 0 <= n_folded <= bias.n_hills:
             raise CheckpointError(f"{path}: engine table of shape {folded.shape} / n_folded={n_folded} does not "
                                   f"fit the bias (grid shape {bias.grid.shape}, {bias.n_hills} hills)")
+        if replay_cost(bias) * n_folded <= FULL_REPLAY_BUDGET * max(bias.n_hills, 1):
+            worst = float(np.max(np.abs(bias.rebuilt(n_folded).values - folded), initial=0.0))
+            if worst > 1e-9 * max(1.0, float(np.sum(bias.history.heights[:n_folded]))):
+                raise CheckpointError(f"{path}: the engine table differs by {worst:.3g} kJ/mol from the replay of "
+                                      f"its {n_folded} folded hills: the file contradicts itself")
         platform = context.getPlatform().getName()
         if checkpoint.platform == platform:
             try:
@@ -240,6 +251,7 @@ class BiasLink:
             self._load_portable(context, checkpoint)
         self._bias._adopt(bias)
         self._install(context, folded, n_folded)
+        self._blown_up_at = None
         for rep in list(self._reporters):
             rep._restored(checkpoint.step)
         return checkpoint
@@ -285,6 +297,24 @@ class BiasLink:
         context.setStepCount(checkpoint.step)
 
 
+#: Largest |coordinate| (nm) and |velocity component| (nm/ps) of a state that is saved. Beyond them a run
+#: has blown up even if the numbers are finite: 1e6 nm is a millimetre, and 1e4 nm/ps (10,000 km/s) is
+#: four orders of magnitude above thermal speeds at any temperature MD is run at (a judgement call, no source).
+MAX_COORDINATE = 1e6
+MAX_SPEED = 1e4
+
+
+def blow_up_reason(positions, velocities) -> str:
+    """'' for a sane MD state, else what is wrong with it (non-finite or absurd positions or velocities)."""
+    if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
+        return "positions or velocities are not finite"
+    if positions.size and np.abs(positions).max() > MAX_COORDINATE:
+        return f"a coordinate is {np.abs(positions).max():.3g} nm, beyond {MAX_COORDINATE:g} nm"
+    if velocities.size and np.abs(velocities).max() > MAX_SPEED:
+        return f"a velocity is {np.abs(velocities).max():.3g} nm/ps, beyond {MAX_SPEED:g} nm/ps"
+    return ""
+
+
 def _context_of(simulation):
     return simulation.context if hasattr(simulation, "context") else simulation
 
@@ -301,25 +331,28 @@ class BiasReporter:
 
     NaN CV values stop the run with an error naming the step and the last checkpoint written.
 
-    A checkpoint that cannot be written (disk full, quota, I/O error, also when flushing the CV log just
-    before it) does not stop the run at once. The file on disk stays the previous checkpoint (writes are
-    atomic), the bias in memory keeps every hill, an ERROR naming the path, the step and the cause is
-    logged (logger ``gridbias.openmm``; Python prints it to stderr even when logging is not configured)
-    and the reporter tries again at the next checkpoint step. After ``max_checkpoint_failures``
-    failures in a row it stops the run with CheckpointError, which says where the last good checkpoint
-    is; ``link.save(simulation, other_path)`` then still keeps the bias held in memory. A written
-    checkpoint resets the count.
+    One policy for every file the run writes (checkpoint, CV log): a write that fails (disk full, quota,
+    I/O error) does not stop the run at once. The file on disk keeps what it had (checkpoints are replaced
+    atomically; a CV log keeps exactly its complete records), the bias in memory keeps every hill, CV-log
+    rows that could not be written are kept and written with the next ones, an ERROR naming the file, the
+    step and the cause is logged (logger ``gridbias.openmm``; Python prints it to stderr even when logging
+    is not configured), and the write is tried again when next due. After ``max_write_failures`` failures
+    in a row of one file, the run stops with WriteError: it names the last good checkpoint
+    (``err.last_checkpoint``, ``err.last_checkpoint_step``) and carries the bias in memory (``err.bias``:
+    ``err.bias.save(path)``; ``link.save(simulation, path)`` also keeps the MD state) to save on a disk
+    with room. A successful write of a file resets its count. The lock file is written once, when the
+    reporter is made: a failure there raises WriteError at once (nothing is in memory yet).
 
     Attributes
     ----------
     last_checkpoint_step : int or None
         Step of the last checkpoint this reporter wrote.
-    checkpoint_failures : int
-        Checkpoints that failed in a row since the last one written (0 when all is well).
+    write_failures : int
+        Failed writes in a row of the file that has failed most since its last good write (0: all well).
     """
 
     def __init__(self, link, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
-                 max_checkpoint_failures=DEFAULT_MAX_CHECKPOINT_FAILURES):
+                 max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
         self._link = link
         self.stride = _steps("stride", stride)
         if checkpoint is None and checkpoint_every is not None:
@@ -332,14 +365,14 @@ class BiasReporter:
             raise ParameterError("log_every needs log= (a file path)")
         self.log = None if log is None else os.fspath(log)
         self.log_every = None if log is None else _steps("log_every", self.stride if log_every is None else log_every)
-        limit = max_checkpoint_failures
+        limit = max_write_failures
         if isinstance(limit, bool) or not isinstance(limit, (int, np.integer)) or limit < 1:
-            raise ParameterError("max_checkpoint_failures must be an integer >= 1 (1: stop at the first "
-                                 f"failed checkpoint), got {limit!r}")
-        self.max_checkpoint_failures = int(limit)
+            raise ParameterError("max_write_failures must be an integer >= 1 (1: stop at the first "
+                                 f"failed write), got {limit!r}")
+        self.max_write_failures = int(limit)
         self.last_checkpoint_step = None
-        self.checkpoint_failures = 0
-        self._failed_steps = []
+        self._failed_steps = {}  # path -> steps of its failed writes in a row
+        self._unwritten_rows = []  # CV-log rows whose write failed, written with the next ones
         self._restored_step = None
         self._started = False
         self._writer = None
@@ -388,7 +421,7 @@ class BiasReporter:
             columns = ["step", "time"] + labels + ["bias"]
             units = ["1", "ps"] + [cv.unit for cv in link.cvs] + ["kJ/mol"]
             meta = {"cvs": link.describe_cvs(), "grid": grid.to_dict(), "temperature": link.bias.temperature,
-                    "bias_factor": link.bias.bias_factor, "stride": self.stride}
+                    "bias_factor": link.bias.bias_factor, "stride": self.stride, "run_id": link.bias.run_id}
             self._writer = CVLogWriter(self.log, columns, units, meta)
             if self._restored_step is not None:
                 self._writer.truncate_after(self._restored_step)
@@ -419,56 +452,82 @@ class BiasReporter:
             if not np.isfinite(s).all():
                 where = (f"the last checkpoint is {self.checkpoint!r} at step {self.last_checkpoint_step}"
                          if self.last_checkpoint_step is not None else "no checkpoint was written by this run")
+                link._blown_up_at = step
                 raise BlownUpError(f"CV values are not finite at step {step}: {s.tolist()} "
                                     f"({link.labels()}); the simulation has blown up. Stopping; {where}")
             t = float(in_md_units(state.getTime()))
             if log_due:
                 energy, _ = link.bias.evaluate(s)
-                self._writer.write([[float(step), t, *s.tolist(), energy]])
+                self._unwritten_rows.append([float(step), t, *s.tolist(), energy])
+                self._attempt(self.log, step, self._write_rows)
             if deposit_due:
                 link.deposit(simulation, s, time=t)
         if self._due(step, self.checkpoint_every):
             self._write_checkpoint(simulation, step)
 
+    @property
+    def write_failures(self) -> int:
+        """Failed writes in a row of the file that has failed most since its last good write."""
+        return max((len(v) for v in self._failed_steps.values()), default=0)
+
+    def _write_rows(self):
+        self._writer.write(self._unwritten_rows)
+        self._unwritten_rows.clear()
+
     def _write_checkpoint(self, simulation, step):
-        """Flush the CV log and write the checkpoint; failures are logged and retried (class docstring)."""
+        """Flush the CV log, then write the checkpoint, each under the write-failure policy."""
+        if self._writer is not None and not self._unwritten_rows:  # rows still held: the append counts
+            self._attempt(self.log, step, self._writer.flush)
+        if self._attempt(self.checkpoint, step, lambda: self._link.save(simulation, self.checkpoint)):
+            self.last_checkpoint_step = step
+
+    def _attempt(self, path, step, write) -> bool:
+        """Run ``write()``; on WriteError log it and count it, stopping the run at the limit (class docstring)."""
         try:
-            if self._writer is not None:
-                self._writer.flush()
-            self._link.save(simulation, self.checkpoint)
-        except (CheckpointError, CVLogError) as exc:
-            self.checkpoint_failures += 1
-            self._failed_steps.append(step)
-            n = self.checkpoint_failures
+            write()
+        except WriteError as exc:
+            failed = self._failed_steps.setdefault(path, [])
+            failed.append(step)
+            n = len(failed)
             if self.last_checkpoint_step is not None:
-                on_disk = f"the file on disk is still the checkpoint of step {self.last_checkpoint_step}"
+                on_disk = f"the last good checkpoint is {self.checkpoint!r} of step {self.last_checkpoint_step}"
+            elif self.checkpoint is not None:
+                on_disk = "this run has written no checkpoint yet (an older file there is untouched)"
             else:
-                on_disk = "no checkpoint has been written by this run (an older file there is untouched)"
+                on_disk = "this run writes no checkpoint"
             in_memory = f"the bias in memory keeps all {self._link.bias.n_hills} hills"
-            if n >= self.max_checkpoint_failures:
-                steps = ", ".join(map(str, self._failed_steps))
+            if n >= self.max_write_failures:
+                steps = ", ".join(map(str, failed))
                 plural = "s" if n > 1 else ""
-                raise CheckpointError(
-                    f"checkpoint {self.checkpoint!r} could not be written {n} time{plural} in a row "
-                    f"(step{plural} {steps}); last cause: {exc}. Stopping the run at step {step}: {on_disk}, "
-                    f"and {in_memory}: catch gridbias.CheckpointError and call link.save(simulation, path) "
-                    "with a path that has room, to keep them") from exc
-            _log.error("could not write checkpoint %r at step %d (failure %d of at most %d in a row): %s. "
-                       "The run continues and tries again at step %d; %s, and %s", self.checkpoint, step, n,
-                       self.max_checkpoint_failures, exc, step + self.checkpoint_every, on_disk, in_memory)
-            return
-        self.checkpoint_failures = 0
-        self._failed_steps.clear()
-        self.last_checkpoint_step = step
+                raise WriteError(
+                    f"{path!r} could not be written {n} time{plural} in a row (step{plural} {steps}); last cause: "
+                    f"{exc}. Stopping the run at step {step}: {on_disk}, and {in_memory}: catch "
+                    "gridbias.WriteError and call err.bias.save(path) or link.save(simulation, path) with a "
+                    "path that has room, to keep them", path=path, bias=self._link.bias,
+                    last_checkpoint=self.checkpoint if self.last_checkpoint_step is not None else None,
+                    last_checkpoint_step=self.last_checkpoint_step) from exc
+            _log.error("could not write %r at step %d (failure %d of at most %d in a row): %s. The run continues "
+                       "and tries again when the next write is due; %s, and %s", path, step, n,
+                       self.max_write_failures, exc, on_disk, in_memory)
+            return False
+        self._failed_steps.pop(path, None)
+        return True
 
     def close(self):
-        """Release the checkpoint lock and close the CV log."""
-        if self._writer is not None:
-            self._writer.close()
-            self._writer = None
-        if self._lock is not None:
-            self._finalizer()
-            self._lock = None
+        """Write CV-log rows still held, close the CV log and release the checkpoint lock (always)."""
+        try:
+            if self._writer is not None:
+                writer = self._writer
+                try:
+                    if self._unwritten_rows:
+                        self._write_rows()
+                finally:
+                    self._writer = None
+                    writer.close()
+        finally:
+            if self._lock is not None:
+                self._finalizer()
+                self._lock = None
 
 
 def _steps(name, value):

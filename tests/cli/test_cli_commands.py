@@ -241,7 +241,7 @@ BAD_INPUT = {
     "time before the first hill": (lambda r, d: ["export", r["checkpoint"], str(d / "x.csv"), "--time",
                                                  "0.1"], "before the first hill"),
     "bad burn-in": (lambda r, d: ["reweight", r["checkpoint"], r["log"], "--along", "cv0", "--method",
-                                  "final", "--burn-in", "1.5"], "burn_in_fraction"),
+                                  "final", "--burn-in", "1.5"], "--burn-in: expected a number in [0, 1)"),
     "unknown option": (lambda r, d: ["inspect", r["checkpoint"], "--colour", "red"],
                        "unrecognized arguments"),
     "no command": (lambda r, d: [], "required"),

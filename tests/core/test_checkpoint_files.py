@@ -29,7 +29,7 @@ from gridbias.checkpoint import (
     read_checkpoint,
     write_checkpoint,
 )
-from gridbias.errors import CheckpointError, LockError, ParameterError
+from gridbias.errors import CheckpointError, LockError, ParameterError, WriteError
 
 REPO = Path(__file__).resolve().parents[2]
 KIND = "gridbias.test"
@@ -234,7 +234,7 @@ def test_enospc_during_write_keeps_old_file(ckpt, monkeypatch):
     monkeypatch.setattr(os, "write", write_then_fail)
     meta, arrays = sample_state()
     arrays["values"] = arrays["values"] + 1.0
-    with pytest.raises(CheckpointError, match=r"could not write checkpoint .*run\.gbz.*ENOSPC") as info:
+    with pytest.raises(WriteError, match=r"could not write checkpoint .*run\.gbz.*ENOSPC") as info:
         write_checkpoint(ckpt, meta, arrays, kind=KIND)
     monkeypatch.undo()
     assert len(calls) == 2
@@ -251,7 +251,7 @@ def test_enospc_at_fsync_keeps_old_file(ckpt, monkeypatch):
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
 
     monkeypatch.setattr(os, "fsync", fail)
-    with pytest.raises(CheckpointError, match="No space left on device") as info:
+    with pytest.raises(WriteError, match="No space left on device") as info:
         write_checkpoint(ckpt, {"new": True}, {}, kind=KIND)
     monkeypatch.undo()
     assert info.value.__cause__.errno == errno.ENOSPC
@@ -265,12 +265,12 @@ def test_real_file_size_limit_keeps_old_file(ckpt):
     script = textwrap.dedent(f"""
         import resource, signal, numpy as np
         from gridbias.checkpoint import write_checkpoint
-        from gridbias.errors import CheckpointError
+        from gridbias.errors import WriteError
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
         resource.setrlimit(resource.RLIMIT_FSIZE, (100_000, 100_000))
         try:
             write_checkpoint({str(ckpt)!r}, {{}}, {{"big": np.zeros(100_000)}}, kind="x")
-        except CheckpointError as exc:
+        except WriteError as exc:
             print("REFUSED", exc, "| cause:", type(exc.__cause__).__name__)
     """)
     out = run_python(script)
@@ -280,10 +280,10 @@ def test_real_file_size_limit_keeps_old_file(ckpt):
 
 
 def test_missing_folder_and_directory_target(tmp_path):
-    with pytest.raises(CheckpointError, match="could not write checkpoint .*nope.*ENOENT"):
+    with pytest.raises(WriteError, match="could not write checkpoint .*nope.*ENOENT"):
         write_checkpoint(tmp_path / "nope" / "a.gbz", {}, {}, kind=KIND)
     (tmp_path / "dir.gbz").mkdir()
-    with pytest.raises(CheckpointError, match="could not write checkpoint .*dir.gbz"):
+    with pytest.raises(WriteError, match="could not write checkpoint .*dir.gbz"):
         write_checkpoint(tmp_path / "dir.gbz", {}, {}, kind=KIND)
     assert temp_files(tmp_path) == []
 
@@ -418,7 +418,7 @@ def test_real_npz_is_refused(tmp_path):
     [
         (b"", "unreadable payload"),
         (b"random bytes, not an archive", "unreadable payload"),
-        (None, "not an .npz archive"),
+        (None, "not a zip file"),
         ({"values": np.zeros(2)}, "no __meta__ member"),
         ({"__meta__": np.frombuffer(b"[1, 2]", np.uint8)}, "meta is a list, not a dict"),
         ({"__meta__": np.frombuffer(b'{"a": NaN}', np.uint8)}, "JSON constant NaN is not allowed"),

@@ -37,7 +37,7 @@ def test_round_trip_and_equality():
         (dict(lower=[0.0], upper=[0.0], bins=[10]), "must exceed"),
         (dict(lower=[0.0, 0.0], upper=[1.0, 1.0], bins=[10, 1]), r"axis 1: bins must be an integer >= 2, got 1"),
         (dict(lower=[0.0], upper=[1.0], bins=[2.5]), "bins must be an integer"),
-        (dict(lower=[0.0], upper=[1.0], bins=[10, 10]), "bins must have 1 entries"),
+        (dict(lower=[0.0], upper=[1.0], bins=[10, 10]), "bins must be 1 integers >= 2"),
         (dict(lower=[0.0], upper=[np.inf], bins=[10]), "finite"),
         (dict(lower=[0.0] * 4, upper=[1.0] * 4, bins=[4] * 4), "1 to 3 CVs"),
         (dict(lower=[0.0], upper=[1.0, 2.0], bins=[10]), "upper has 2 entries"),

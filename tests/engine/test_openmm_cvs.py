@@ -20,7 +20,8 @@ mm = pytest.importorskip("openmm")
 import gridbias as gb  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
 
-pytestmark = [pytest.mark.openmm, pytest.mark.filterwarnings("ignore:axis .* coarser than sigma/2")]
+pytestmark = [pytest.mark.openmm, pytest.mark.filterwarnings("ignore:axis .* coarser than sigma/2"),
+              pytest.mark.filterwarnings("ignore:Wall on cv .* outside the grid")]  # walls tested on their own
 GROUP = gbo.DEFAULT_FORCE_GROUP
 K_PROBE = 10.0
 

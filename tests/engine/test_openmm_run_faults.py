@@ -187,15 +187,16 @@ def test_failed_checkpoint_is_logged_and_retried(tmp_path, monkeypatch, caplog):
     assert disk.failed == 1 and sim.currentStep == 300
     assert ckpt.read_bytes() == good and read_checkpoint(ckpt)[0]["step"] == 200
     assert [p.name for p in tmp_path.iterdir() if ".tmp-" in p.name] == []
-    assert rep.checkpoint_failures == 1 and rep.last_checkpoint_step == 200
+    assert rep.write_failures == 1 and rep.last_checkpoint_step == 200
     message = caplog.records[-1].getMessage()
     assert caplog.records[-1].levelname == "ERROR"
     for part in (str(ckpt), "at step 300", "No space left on device", "ENOSPC", "failure 1 of at most 3",
-                 "tries again at step 400", "still the checkpoint of step 200", "keeps all 15 hills"):
+                 "tries again when the next write is due", f"the last good checkpoint is {str(ckpt)!r} of step 200",
+                 "keeps all 15 hills"):
         assert part in message, (part, message)
     assert link.bias.n_hills == 15
     sim.step(100)  # the next checkpoint is written and holds every hill
-    assert rep.checkpoint_failures == 0 and rep.last_checkpoint_step == 400
+    assert rep.write_failures == 0 and rep.last_checkpoint_step == 400
     other, sim2 = make_run(seed=2)
     assert other.restore(sim2, ckpt).step == 400
     assert other.bias.n_hills == link.bias.n_hills == 20
@@ -204,9 +205,10 @@ def test_failed_checkpoint_is_logged_and_retried(tmp_path, monkeypatch, caplog):
     rep.close()
 
 
-def test_failed_log_flush_counts_as_a_failed_checkpoint(tmp_path, monkeypatch, caplog):
+def test_failed_log_flush_follows_the_same_policy(tmp_path, monkeypatch, caplog):
     """On file systems that allocate space late, a full disk shows first when the CV log is synced just
-    before a checkpoint: the same policy applies (logged, retried, nothing lost)."""
+    before a checkpoint: the same policy applies (logged, retried, nothing lost), and the checkpoint is
+    still written."""
     link, sim = make_run()
     ckpt, log = tmp_path / "run.gbz", tmp_path / "run.gbl"
     rep = link.reporter(STRIDE, checkpoint=ckpt, checkpoint_every=100, log=log)
@@ -223,33 +225,35 @@ def test_failed_log_flush_counts_as_a_failed_checkpoint(tmp_path, monkeypatch, c
     monkeypatch.setattr(os, "fsync", fsync_once_full)
     with caplog.at_level("ERROR", logger="gridbias.openmm"):
         sim.step(100)
-    assert rep.checkpoint_failures == 1 and read_checkpoint(ckpt)[0]["step"] == 100
+    assert rep.write_failures == 1 and read_checkpoint(ckpt)[0]["step"] == 200
     assert "could not flush CV log" in caplog.text and str(log) in caplog.text and "ENOSPC" in caplog.text
     sim.step(100)
-    assert rep.checkpoint_failures == 0 and read_checkpoint(ckpt)[0]["step"] == 300
+    assert rep.write_failures == 0 and read_checkpoint(ckpt)[0]["step"] == 300
     rep.close()
     np.testing.assert_array_equal(read_cvlog(log).column("step"), np.arange(20, 301, 20))
 
 
 def test_repeated_failures_stop_the_run_and_the_bias_can_still_be_saved(tmp_path, monkeypatch, caplog):
-    """max_checkpoint_failures=2 failures in a row stop the run with a CheckpointError that names the path,
+    """max_write_failures=2 failures in a row stop the run with a WriteError that names the path,
     the failed steps, the cause and the last good checkpoint; the bias in memory is intact and saves
     elsewhere."""
     link, sim = make_run()
     ckpt = tmp_path / "run.gbz"
-    rep = link.reporter(STRIDE, checkpoint=ckpt, checkpoint_every=100, max_checkpoint_failures=2)
+    rep = link.reporter(STRIDE, checkpoint=ckpt, checkpoint_every=100, max_write_failures=2)
     sim.reporters.append(rep)
     sim.step(100)
     disk = FailingWrites(monkeypatch)
     disk.armed = 10**6  # the disk stays full
-    with caplog.at_level("ERROR", logger="gridbias.openmm"), pytest.raises(gb.CheckpointError) as info:
+    with caplog.at_level("ERROR", logger="gridbias.openmm"), pytest.raises(gb.WriteError) as info:
         sim.step(500)
     message = str(info.value)
     for part in (str(ckpt), "could not be written 2 times in a row (steps 200, 300)", "No space left on",
-                 "Stopping the run at step 300", "still the checkpoint of step 100", "keeps all 15 hills",
+                 "Stopping the run at step 300", "of step 100", "keeps all 15 hills", "err.bias.save(path)",
                  "link.save(simulation, path)"):
         assert part in message, (part, message)
-    assert isinstance(info.value.__cause__, gb.CheckpointError)
+    assert isinstance(info.value.__cause__, gb.WriteError) and not isinstance(info.value, ValueError)
+    assert info.value.bias is link.bias and info.value.path == str(ckpt)
+    assert (info.value.last_checkpoint, info.value.last_checkpoint_step) == (str(ckpt), 100)
     root = info.value.__cause__.__cause__
     assert isinstance(root, OSError) and root.errno == errno.ENOSPC
     assert len([r for r in caplog.records if r.levelname == "ERROR"]) == 1  # the first failure was logged
@@ -267,21 +271,21 @@ def test_repeated_failures_stop_the_run_and_the_bias_can_still_be_saved(tmp_path
 def test_first_checkpoint_failing_says_none_was_written(tmp_path, monkeypatch):
     link, sim = make_run()
     rep = link.reporter(STRIDE, checkpoint=tmp_path / "run.gbz", checkpoint_every=40,
-                        max_checkpoint_failures=1)
+                        max_write_failures=1)
     sim.reporters.append(rep)
     FailingWrites(monkeypatch).armed = 1
-    with pytest.raises(gb.CheckpointError, match=r"could not be written 1 time in a row \(step 40\).*"
-                                                 "no checkpoint has been written by this run"):
+    with pytest.raises(gb.WriteError, match=r"could not be written 1 time in a row \(step 40\).*"
+                                             "this run has written no checkpoint yet"):
         sim.step(40)
     assert not (tmp_path / "run.gbz").exists()
     rep.close()
 
 
 @pytest.mark.parametrize("value", [0, -1, 2.5, True, "3"])
-def test_bad_max_checkpoint_failures(value):
+def test_bad_max_write_failures(value):
     link, _ = make_run()
-    with pytest.raises(gb.ParameterError, match=rf"max_checkpoint_failures must be an integer >= 1.*{value}"):
-        link.reporter(STRIDE, checkpoint="x.gbz", checkpoint_every=100, max_checkpoint_failures=value)
+    with pytest.raises(gb.ParameterError, match=rf"max_write_failures must be an integer >= 1.*{value}"):
+        link.reporter(STRIDE, checkpoint="x.gbz", checkpoint_every=100, max_write_failures=value)
 
 
 # ------------------------------------------------------------------------------- two runs, one checkpoint
@@ -506,24 +510,34 @@ def _rewritten(raw, tmp_path, change):
 
 
 CRAFTED = {
-    "grid values missing": (lambda m, a: a.pop("bias.coefficients"), "incomplete or invalid: 'coefficients'"),
-    "engine table missing": (lambda m, a: a.pop("engine.folded_values"), r"incomplete \(missing 'engine"),
+    "grid values missing": (lambda m, a: a.pop("bias.coefficients"), r"arrays are .*expected \['bias.coefficients'"),
+    "engine table missing": (lambda m, a: a.pop("engine.folded_values"),
+                             r"arrays are .*expected .*'engine.folded_values'"),
     "grid values reshaped": (lambda m, a: a.update({"bias.coefficients": np.zeros(7)}),
-                             r"coefficients have shape \(7,\)"),
+                             r"array coefficients is \(\(7,\), dtype\('float64'\)\)"),
     "NaN in the grid": (lambda m, a: a["bias.coefficients"].__setitem__((0, 3, 3, 0), np.nan),
                         "coefficients hold NaN"),
-    "hill count too large": (lambda m, a: m["bias"].update({"n_hills": 11}), "does not match n_hills=11"),
+    "hill count too large": (lambda m, a: m["bias"].update({"n_hills": 11}), r"array hill_centers is .*n_hills=11"),
     "engine table of another size": (lambda m, a: a.update({"engine.folded_values": np.zeros((8, 8))}),
                                      r"engine table of shape \(8, 8\)"),
     "more folded hills than hills": (lambda m, a: m["engine"].update({"n_folded": 99}), "n_folded=99"),
     "another CV": (lambda m, a: m["cvs"][1]["atoms"].__setitem__(3, 17), "CV 1 differs"),
-    "another system": (lambda m, a: m.update({"n_particles": 23}), "23 particles; this System has 22"),
+    "another system": (lambda m, a: (m.update({"n_particles": 23}),
+                                     a.update({k: np.zeros((23, 3)) for k in ("md.positions", "md.velocities")})),
+                       "23 particles; this System has 22"),
+    "positions of another particle count": (lambda m, a: m.update({"n_particles": 23}),
+                                            r"md.positions must be finite float64 of shape \(23, 3\)"),
+    "table not the replay of its hills": (lambda m, a: a["bias.coefficients"].__setitem__((0, 3, 3, 0), 5.0),
+                                          "contradicts itself: the table differs from the replay of its 10 hills"),
+    "negative hill height": (lambda m, a: a["bias.hill_heights"].__setitem__(0, -1.0),
+                             "hill heights must be finite and >= 0"),
+    "time not a number": (lambda m, a: m.update({"time_ps": "soon"}), "time_ps must be a finite number"),
     "another grid": (lambda m, a: m["bias"]["grid"].update({"bins": [32, 32]}),
-                     r"coefficients have shape \(4, 64, 64, 1\).*the grid needs \(4, 32, 32, 1\)"),
+                     r"array coefficients is \(\(4, 64, 64, 1\).* need \(4, 32, 32, 1\)"),
     "another hill height": (lambda m, a: m["bias"].update({"height": 2.0}), "height differs: 1.2 vs 2.0"),
     "newer format": (lambda m, a: m.update({"version": 99}), "newer gridbias"),
     "not a bias state": (lambda m, a: m["bias"].update({"kind": "other"}), "not a gridbias bias state"),
-    "metadata missing": (lambda m, a: m.pop("engine"), r"incomplete \(missing 'engine'\)"),
+    "metadata missing": (lambda m, a: m.pop("engine"), r"incomplete \(missing \['engine'\]\)"),
 }
 
 
@@ -631,7 +645,7 @@ def test_pickle_planted_in_a_run_checkpoint_is_refused_unexecuted(tmp_path):
     path.write_bytes(with_payload(raw, buffer.getvalue()))
     link, sim = make_run()
     before = snapshot(link, sim)
-    with pytest.raises(gb.CheckpointError, match="valid checksum but an unreadable payload.*allow_pickle"):
+    with pytest.raises(gb.CheckpointError, match="valid checksum but an unreadable payload.*dtype object"):
         link.restore(sim, path)
     assert not marker.exists()
     assert_unchanged(before, snapshot(link, sim))

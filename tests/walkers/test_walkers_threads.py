@@ -382,7 +382,7 @@ def test_a_failed_write_fails_on_every_walker(tmp_path):
         share(make_bias(), comm, abort_on_error=False).save(path)
 
     for _, exc in run_walkers(2, walker):
-        assert isinstance(exc, CheckpointError) and "walker 0 could not write the shared bias" in str(exc)
+        assert isinstance(exc, gb.WriteError) and "walker 0 could not write the shared bias" in str(exc)
     assert not path.parent.exists()
 
 
