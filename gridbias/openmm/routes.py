@@ -3,7 +3,7 @@
 Two routes (measured in bench/bench_engine.py and bench/bench_scale.py; figures in bench/README.md):
 
 - ``"cvforce"``: one CustomCVForce whose tables hold the core's spline coefficients (discrete tables, the
-  cubic Hermite written out; gridbias._openmm_hermite). A push only copies numbers (~0.3-0.5 ms for
+  cubic Hermite written out; gridbias.openmm.hermite). A push only copies numbers (~0.3-0.5 ms for
   129^2, ~26 ms for 65^3 on one core), so every deposit is pushed and the engine equals the core at every
   step. The force carries an inner Context: ~1 us per step on the Reference platform, but ~18 us per step
   for a 22-atom molecule and ~150 us for 8,600 atoms in water on the CPU platform.

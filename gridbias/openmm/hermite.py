@@ -2,8 +2,8 @@
 
 The core holds, per node, the value and the spline derivatives that define its tensor-product cubic
 Hermite interpolant (``GridBias._coef``: ``2**d`` arrays, derivatives in index units). Here each array
-becomes one ``Discrete1DFunction`` (flat node index) and the energy expression evaluates the interpolant itself: the cell
-and the fraction ``t`` per axis from ``floor``, the four Hermite weights of ``t`` per axis, and the
+becomes one ``Discrete1DFunction`` (flat node index) and the energy expression evaluates the interpolant
+itself: the cell and the fraction ``t`` per axis from ``floor``, the four Hermite weights of ``t`` per axis, and the
 ``2**d`` corners x ``2**d`` tables of the patch. OpenMM differentiates the expression for the forces
 (a discrete table's derivative is zero, so the force is exactly dE/dt / spacing, the core's gradient).
 
@@ -24,7 +24,13 @@ import itertools
 
 import numpy as np
 
-__all__ = ["HermiteTables", "index_coordinate"]
+from ..errors import ParameterError
+
+__all__ = ["HermiteTables", "index_coordinate", "MAX_TABLE_NODES"]
+
+#: Largest table (nodes, periodic axes closed) of the cvforce route: flat node indices are computed in
+#: the expression, exactly only up to 2**24 in single precision.
+MAX_TABLE_NODES = 2**24
 
 
 def index_coordinate(variable, grid, a) -> str:
@@ -93,23 +99,28 @@ class HermiteTables:
         # Table order: x fastest (NumPy order "F"), periodic axes closed by repeating node 0.
         node_index = [np.arange(int(grid.bins[a]) + 1) % int(grid.shape[a]) for a in range(d)]
         self.shape = tuple(len(ix) for ix in node_index)
-        # One flat index per cell: a lookup with one argument instead of d costs OpenMM far less to
-        # compile (3-D: 0.7 s instead of 3.5 s); flat indices stay below 2**24, exact in single precision.
+        # One flat index per cell: a lookup with one argument instead of d costs OpenMM less to compile
+        # (a 3-D Context: ~2 s instead of ~3.5 s, on this 2-core machine); flat indices must stay below
+        # 2**24 to be exact in single precision (OpenCL, CUDA).
+        if int(np.prod(self.shape)) > MAX_TABLE_NODES:
+            raise ParameterError(f"the cvforce route's tables hold at most {MAX_TABLE_NODES} nodes (exact "
+                                 f"indices in single precision); this grid needs {int(np.prod(self.shape))}: "
+                                 "use fewer bins or route='compound'")
         strides = [int(np.prod(self.shape[:a])) for a in range(d)]
         defs.insert(0, f"{prefix}cell=" + "+".join(f"{strides[a]}*{prefix}c{a}" if a else f"{prefix}c{a}"
                                                    for a in range(d)))
         patch = self._patch(prefix, d)
         body = f"({'*'.join(masks)})*({patch})" if masks else f"({patch})"
         self.energy = "; ".join([body] + defs)
-        strides = np.cumprod((1,) + tuple(int(x) for x in grid.shape[::-1]))[:-1][::-1]
+        core_strides = np.cumprod((1,) + tuple(int(x) for x in grid.shape[::-1]))[:-1][::-1]  # C order
         mesh = np.meshgrid(*node_index, indexing="ij")
-        flat = sum(np.asarray(ix, dtype=np.int64) * int(s) for ix, s in zip(mesh, strides))
+        flat = sum(np.asarray(ix, dtype=np.int64) * int(s) for ix, s in zip(mesh, core_strides, strict=True))
         self._index = np.ascontiguousarray(flat.ravel(order="F"))
-        self._n_nodes = int(np.prod(grid.shape))
 
     def _patch(self, prefix, d):
-        """The Hermite patch, summed one axis at a time (a factored form: OpenMM compiles and
-        differentiates it in milliseconds, where the 64-term sum of a 3-D patch takes ~20 s).
+        """The Hermite patch, summed one axis at a time. OpenMM inlines every intermediate variable
+        before it differentiates and compiles an expression, so the size of the written-out sum matters:
+        a 3-D Context takes ~2 s with this factored form, ~24 s with the flat 64-term sum.
 
         Level a sums over corner k_a and derivative bit b_a of axis a, for every corner and bit of the
         axes above a: ``L_{a+1}[rest] = sum_{k, b} L_a[k, b, rest] * W_a[b][k]``, with ``L_0`` the table
@@ -138,7 +149,7 @@ class HermiteTables:
     def table_values(self, coef, m) -> np.ndarray:
         """(prod(shape),) float: coefficient array ``m`` of ``coef`` (the core's ``(2**d, n0, n1, n2)``
         array) in the order of table ``m``."""
-        return coef[m].reshape(-1)[: self._n_nodes][self._index]
+        return coef[m].reshape(-1)[self._index]
 
     def make_functions(self, openmm, coef) -> list:
         """One ``Discrete1DFunction`` (flat index, x fastest) per coefficient array, filled from ``coef``."""

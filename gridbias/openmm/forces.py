@@ -1,4 +1,4 @@
-"""The engine side of the OpenMM adapter (private): table layout, force construction, pushing the bias.
+"""The OpenMM adapter's engine forces: table layout, force construction, pushing the bias into a Context.
 
 Two forces carry a bias (both in the link's force group):
 
@@ -27,8 +27,8 @@ import math
 
 import numpy as np
 
-from ._openmm_hermite import HermiteTables, index_coordinate
-from .errors import ParameterError
+from ..errors import ParameterError
+from .hermite import HermiteTables, index_coordinate
 
 __all__ = ["PERIODIC_PADDING", "TableLayout", "EngineBias", "require_openmm", "same_object"]
 
@@ -228,7 +228,8 @@ class EngineBias:
                 affine = (float(grid.lower[i]), float(grid.spacing[i])) if cv.geometric else None
                 force.addCollectiveVariable(f"{prefix}u{i}" if cv.geometric else f"cv{i}",
                                             _inner_force(openmm, cv, periodic_box, affine))
-            for name, function in zip(self.hermite.names, self.hermite.make_functions(openmm, bias._coef)):
+            functions = self.hermite.make_functions(openmm, bias._coef)
+            for name, function in zip(self.hermite.names, functions, strict=True):
                 force.addTabulatedFunction(name, function)
             self._add_parameters(force)
             self.table_force = force
@@ -307,25 +308,16 @@ class EngineBias:
 def _inner_force(openmm, cv, periodic_box, affine):
     """A force whose energy is the geometric CV mapped by ``affine = (lower, spacing)`` to
     ``(cv - lower) / spacing``, or a copy of a ``from_force`` CV's force (``affine`` None)."""
-    if not cv.geometric:
-        return openmm.XmlSerializer.deserialize(cv.serialized())
-    lower, spacing = affine
     def mapped(x):
-        return f"({x}-({lower!r}))/({spacing!r})"
-    if type(cv).__name__ == "Dihedral":
-        f = openmm.CustomTorsionForce(mapped("theta"))
-        f.addTorsion(*cv.atoms, [])
-    elif type(cv).__name__ == "Angle":
-        f = openmm.CustomAngleForce(mapped("theta"))
-        f.addAngle(*cv.atoms, [])
-    elif type(cv).__name__ == "Distance":
-        f = openmm.CustomBondForce(mapped("r"))
-        f.addBond(*cv.atoms, [])
-    else:
-        f = EngineBias._bond_force(openmm, [cv], mapped("cv0"), periodic_box)
-        return f
-    f.setUsesPeriodicBoundaryConditions(periodic_box)
-    return f
+        return f"({x}-({affine[0]!r}))/({affine[1]!r})"
+
+    force = cv.single_force(openmm)
+    if force is None:
+        return EngineBias._bond_force(openmm, [cv], mapped("cv0"), periodic_box)
+    if cv.geometric:
+        force.setEnergyFunction(mapped(force.getEnergyFunction()))
+        force.setUsesPeriodicBoundaryConditions(periodic_box)
+    return force
 
 
 def check_route(route, cvs):
