@@ -3,9 +3,10 @@
 The core holds, per node, the value and the spline derivatives that define its tensor-product cubic
 Hermite interpolant (``GridBias._coef``: ``2**d`` arrays, derivatives in index units). Here each array
 becomes one ``Discrete1DFunction`` (flat node index) and the energy expression evaluates the interpolant
-itself: the cell and the fraction ``t`` per axis from ``floor``, the four Hermite weights of ``t`` per axis, and the
-``2**d`` corners x ``2**d`` tables of the patch. OpenMM differentiates the expression for the forces
-(a discrete table's derivative is zero, so the force is exactly dE/dt / spacing, the core's gradient).
+itself: the cell and the fraction ``t`` per axis from ``floor``, the four Hermite weights of ``t`` per
+axis, and the ``2**d`` corners x ``2**d`` tables of the patch. OpenMM differentiates the expression for
+the forces (a discrete table's derivative is zero, so the force is exactly dE/dt / spacing, the core's
+gradient).
 
 Why: the engine then applies the core's function itself, not a refit of its node values, and a table
 update only copies numbers (no spline solve): 0.4 ms for 129^2 on the Reference platform against 4-6 ms
