@@ -47,12 +47,12 @@ def compound_push_seconds(ndim: int, nodes: int) -> float:
 def pending_for(ndim: int, nodes: int, stride: int = TYPICAL_STRIDE) -> int:
     """Pending hills K minimising push / (K + 1) + K * slot cost * stride (the cost per deposit).
 
-    The optimum of the continuous model is K = sqrt(push / (slot cost * stride)); the integer next to it
-    with the lower modelled cost is returned, between 1 and 64.
+    The optimum of the continuous model is K + 1 = sqrt(push / (slot cost * stride)); the integer next to
+    it with the lower modelled cost is returned, between 1 and 64.
     """
     push = compound_push_seconds(ndim, nodes)
     cost = lambda k: push / (k + 1) + k * _SLOT_SECONDS * stride  # noqa: E731
-    k = math.sqrt(push / (_SLOT_SECONDS * stride))
+    k = math.sqrt(push / (_SLOT_SECONDS * stride)) - 1.0
     best = min((max(1, math.floor(k)), max(1, math.ceil(k))), key=cost)
     return int(min(best, _MAX_PENDING))
 
