@@ -34,9 +34,11 @@ def bare_bicubic(coef, lower0, lower1, inv0, inv1, points, energy_out, grad_out)
         c1 = int(np.floor(u1))
         t0 = u0 - c0
         t1 = u1 - c1
-        a = (2 * t0 ** 3 - 3 * t0 ** 2 + 1, -2 * t0 ** 3 + 3 * t0 ** 2, t0 ** 3 - 2 * t0 ** 2 + t0, t0 ** 3 - t0 ** 2)
+        a = (2 * t0 ** 3 - 3 * t0 ** 2 + 1, -2 * t0 ** 3 + 3 * t0 ** 2,
+             t0 ** 3 - 2 * t0 ** 2 + t0, t0 ** 3 - t0 ** 2)
         da = (6 * t0 * t0 - 6 * t0, -6 * t0 * t0 + 6 * t0, 3 * t0 * t0 - 4 * t0 + 1, 3 * t0 * t0 - 2 * t0)
-        b = (2 * t1 ** 3 - 3 * t1 ** 2 + 1, -2 * t1 ** 3 + 3 * t1 ** 2, t1 ** 3 - 2 * t1 ** 2 + t1, t1 ** 3 - t1 ** 2)
+        b = (2 * t1 ** 3 - 3 * t1 ** 2 + 1, -2 * t1 ** 3 + 3 * t1 ** 2,
+             t1 ** 3 - 2 * t1 ** 2 + t1, t1 ** 3 - t1 ** 2)
         db = (6 * t1 * t1 - 6 * t1, -6 * t1 * t1 + 6 * t1, 3 * t1 * t1 - 4 * t1 + 1, 3 * t1 * t1 - 2 * t1)
         e = 0.0
         g0 = 0.0
@@ -90,8 +92,8 @@ def main(argv=None):
             best[k] = min(best[k], time.process_time() - t0)
     energy, grad = bias[2].evaluate(pts[2])
     rows = [[k, f"{best[k] / n * 1e9:.1f}", f"{best[k] / best['bare 2-D bicubic']:.2f}"] for k in calls]
-    print(f"numba {__import__('numba').__version__}, {n:,} points, process CPU time, fastest of {args.repeats}; "
-          f"load average {os.getloadavg()[0]:.1f}\n")
+    print(f"numba {__import__('numba').__version__}, {n:,} points, process CPU time, fastest of "
+          f"{args.repeats}; load average {os.getloadavg()[0]:.1f}\n")
     print(markdown_table(["call", "ns per point", "ratio to the bare 2-D bicubic"], rows))
     print(f"\nmax |evaluate - bare| over the 2-D points: energy {np.abs(energy - e).max():.1e}, "
           f"gradient {np.abs(grad - g).max():.1e} (different rounding of the same formula)")
