@@ -42,12 +42,13 @@ import numpy as np
 from ..bias import GridBias
 from ..errors import ParameterError
 from ..grid import Grid
+from ..runs import CHECKPOINT_KIND
 from ..walls import Wall
 from . import cvs as _cvs
 from . import routes as _routes
 from ._units import cv_unit_name, in_md_units, is_quantity, per_cv
 from .forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
-from .link import CHECKPOINT_KIND, DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
+from .link import DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
 
 __all__ = [
     "distance",
@@ -158,7 +159,7 @@ def make_bias(cvs, *, lower, upper, bins, sigma, height, temperature, bias_facto
 
             power = float(spec.get("power", 2.0))
             per = getattr(unit, unit_name) ** power if unit_name != "dimensionless" else unit.dimensionless
-            spec["k"] = float(spec["k"].value_in_unit(unit.kilojoule_per_mole / per))
+            spec["k"] = in_md_units(spec["k"], name="wall k", unit=unit.kilojoule_per_mole / per)
         converted.append(Wall(**spec))
     return GridBias(grid, per_cv("sigma", sigma, cvs),
                     in_md_units(height, name="height", unit="kilojoule_per_mole"),
