@@ -86,12 +86,12 @@ def _generic_eval_point(coef4, ndim, lower3, spacing3, bins3, periodic3, s, grad
 
 def _reference(bias, points):
     """Energy (n,) and gradient (n, d) from the generic kernel, walls added as the shipped code does."""
-    coef, ndim, lower3, spacing3, bins3, periodic3 = bias.kernel_args()
+    coef, ndim, lower3, spacing3, bins3, periodic3 = bias._kernel_args()
     energy = np.empty(len(points))
     grad = np.empty((len(points), ndim))
     for p, s in enumerate(points):
         energy[p] = _generic_eval_point(coef, ndim, lower3, spacing3, bins3, periodic3, s, grad[p])
-        energy[p] += _kernels.wall_point(*bias.wall_args(), s, grad[p])
+        energy[p] += _kernels.wall_point(*bias._wall_args(), s, grad[p])
     return energy, grad
 
 
@@ -129,7 +129,7 @@ def test_specialised_kernels_reproduce_the_generic_kernel_bit_for_bit(rng, lower
         e1, g1 = bias.evaluate(points[p])
         assert e1 == ref_e[p] and np.array_equal(g1, ref_g[p])
     # the kernel the test dynamics call (grid part only)
-    coef, ndim, lower3, spacing3, bins3, periodic3 = bias.kernel_args()
+    coef, ndim, lower3, spacing3, bins3, periodic3 = bias._kernel_args()
     g_fast, g_ref = np.empty(d), np.empty(d)
     for s in points[::5]:
         e_fast = _kernels.eval_point(coef, ndim, lower3, spacing3, bins3, periodic3, s, g_fast)
