@@ -302,8 +302,8 @@ def section_exactness(platform_names, quick):
                 worst = max(worst, abs(link.bias_energy(sim) - core) / scale)
             rows.append([pname, precision or "double", route, link.pending_hills, f"{worst:.1e}"])
     print("\n### Engine vs core after every deposit (dipeptide, 129^2, WT): max relative difference\n")
-    print(markdown_table(["platform", "precision", "route", "pending hills", "max |engine - core| / "
-                          "(max |bias| + |core|)"], rows))
+    print(markdown_table(["platform", "precision", "route", "pending hills", "max abs(engine - core) / "
+                          "(max abs(bias) + abs(core))"], rows))
 
 
 def main(argv=None):

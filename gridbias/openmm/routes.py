@@ -1,15 +1,15 @@
 """Which engine route applies a bias on which OpenMM platform, and how many pending hills (private).
 
-Two routes (measured in bench/bench_engine.py and bench/bench_scale.py; figures in bench/README.md):
+Two routes (measured in bench/bench_routes.py; figures in bench/README.md, "Engine routes"):
 
 - ``"cvforce"``: one CustomCVForce whose tables hold the core's spline coefficients (discrete tables, the
-  cubic Hermite written out; gridbias.openmm.hermite). A push only copies numbers (~0.3-0.5 ms for
-  129^2, ~26 ms for 65^3 on one core), so every deposit is pushed and the engine equals the core at every
-  step. The force carries an inner Context: ~1 us per step on the Reference platform, but ~18 us per step
-  for a 22-atom molecule and ~150 us for 8,600 atoms in water on the CPU platform.
+  cubic Hermite written out; gridbias.openmm.hermite). A push only copies numbers (~0.25 ms for 129^2,
+  ~17 ms for 65^3), so every deposit is pushed and the engine equals the core at every step. The force
+  carries an inner Context: as cheap per step as any static table on the Reference platform, but ~50 us
+  per step for a 22-atom molecule and ~0.55 ms for 8,900 atoms in water on the CPU platform.
 - ``"compound"``: the CVs inside one CustomCompoundBondForce (or CustomCentroidBondForce) with a
-  continuous table (OpenMM refits its spline and recompiles the force at every push: ~12 ms for 129^2,
-  ~290 ms for 65^3) plus a second force holding the newest hills as exact Gaussians (global parameters,
+  continuous table (OpenMM refits its spline and recompiles the force at every push: ~15 ms for 129^2,
+  0.3-0.6 s for 65^3) plus a second force holding the newest hills as exact Gaussians (global parameters,
   no recompile), folded into the table every ``pending + 1`` deposits. Cheapest per step on the CPU
   platform; no per-step round trip through an inner Context.
 
