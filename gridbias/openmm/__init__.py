@@ -209,9 +209,8 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, route="auto", 
         "auto" (default) picks the cheaper one for ``platform``: "cvforce" on Reference (exact at every
         step: the core's spline coefficients as tables, pushed at every deposit), "compound" on CPU and
         GPU platforms (a continuous table + pending exact-Gaussian hills; no inner Context, whose cost
-        per step on the CPU platform exceeds what the cheap pushes save). ``from_force`` CVs and
-        ``pending_hills=0`` with "auto" on Reference always use "cvforce"; ``pending_hills`` > 0 needs
-        "compound".
+        per step on the CPU platform exceeds what the cheap pushes save). ``from_force`` CVs always use
+        "cvforce"; with "auto", ``pending_hills`` > 0 selects "compound" (the only route that holds them).
     platform : str or openmm.Platform, keyword-only
         The platform the Simulation will run on, for ``route="auto"``. Default: the one OpenMM picks
         when none is named (the fastest available). A link bound to another platform than planned logs
