@@ -107,18 +107,22 @@ def make_case(name, route="cvforce", pending_hills=None):
     return cvs, bias, system, link
 
 
-def cv_jacobians(cvs, positions, key):
+class CVJacobians:
     """ds_i/dx (d, n, 3) from OpenMM: the force of a Context whose only force's energy is CV i is -ds/dx."""
-    out = []
-    for cv in cvs:
-        system = free_particles(len(positions))
-        force = cv.single_force(mm)
-        force.setForceGroup(1)
-        system.addForce(force)
-        context, _ = context_for(system, "Reference")
-        context.setPositions(positions)
-        out.append(-context.getState(getForces=True).getForces(asNumpy=True)._value)
-    return np.array(out)
+
+    def __init__(self, cvs, n_particles):
+        self.contexts = []
+        for cv in cvs:
+            system = free_particles(n_particles)
+            system.addForce(cv.single_force(mm))
+            self.contexts.append(context_for(system, "Reference")[0])
+
+    def __call__(self, positions):
+        out = []
+        for context in self.contexts:
+            context.setPositions(positions)
+            out.append(-context.getState(getForces=True).getForces(asNumpy=True)._value)
+        return np.array(out)
 
 
 def engine_energy_forces(context):
@@ -126,20 +130,19 @@ def engine_energy_forces(context):
     return state.getPotentialEnergy()._value, np.asarray(state.getForces(asNumpy=True)._value)
 
 
-def check_engine_equals_core(link, context, cvs, positions, key, tol):
+def check_engine_equals_core(link, context, jacobians, positions, tol):
     """Engine energy and forces vs the core at ``positions``: relative differences (energy against the
     largest |node value| + |energy|, forces against the largest core force + 1)."""
     context.setPositions(positions)
     s = link.cv_values(context)
     core_e, core_g = link.bias.evaluate(s)
-    core_f = -np.einsum("i,ink->nk", core_g, cv_jacobians(cvs, positions, key))
+    core_f = -np.einsum("i,ink->nk", core_g, jacobians(positions))
     e, f = engine_energy_forces(context)
     scale_e = np.abs(link.bias.values).max() + abs(core_e)
     scale_f = np.abs(core_f).max() + 1.0
     rel_e, rel_f = abs(e - core_e) / scale_e, np.abs(f - core_f).max() / scale_f
     assert rel_e <= tol[0], f"energy: engine {e!r}, core {core_e!r} at s={s.tolist()} (relative {rel_e:.1e})"
     assert rel_f <= tol[1], f"forces differ by {rel_f:.1e} of the largest force at s={s.tolist()}"
-    return rel_e, rel_f
 
 
 def positions_inside(rng, cvs, bias, margin=0.0):
@@ -153,26 +156,31 @@ def positions_inside(rng, cvs, bias, margin=0.0):
             return pos
 
 
-@pytest.mark.parametrize("key", list(PLATFORMS))
-@pytest.mark.parametrize("case", ["1d-periodic", "1d-nonperiodic", "2d-mixed", "3d-mixed"])
+# Every platform and precision on the mixed 2-D case; the other cases on the two arithmetics (double on
+# Reference, float32 on OpenCL single) and 1-D on CPU: each OpenCL Context compiles for seconds on pocl.
+PARITY = ([("2d-mixed", key) for key in PLATFORMS]
+          + [(case, key) for case in ("1d-periodic", "1d-nonperiodic", "3d-mixed")
+             for key in ("Reference", "OpenCL-single")]
+          + [("1d-periodic", "CPU"), ("1d-nonperiodic", "CPU")])
+
+
+@pytest.mark.parametrize("case, key", PARITY)
 def test_cvforce_engine_equals_core_after_every_deposit(case, key, rng):
-    """After each of 10 deposits (well-tempered, walls present) the engine's energy and forces equal the
+    """After each of 6 deposits (well-tempered, walls present) the engine's energy and forces equal the
     core's, at the deposit point and at a probe point that may lie beyond the grid (walls only there)."""
-    if case == "3d-mixed" and key.startswith("OpenCL") and key != "OpenCL-single":
-        pytest.skip("3-D on OpenCL: single precision covers it (each Context compiles for seconds on pocl)")
     cvs, bias, system, link = make_case(case)
     context, tol = context_for(system, key)
-    worst = [0.0, 0.0]
-    for _ in range(10):
+    jacobians = CVJacobians(cvs, system.getNumParticles())
+    for _ in range(6):
         pos = positions_inside(rng, cvs, bias)
         context.setPositions(pos)
         link.deposit(context)
         for probe in (pos, positions_inside(rng, cvs, bias, margin=0.15)):
-            worst = np.maximum(worst, check_engine_equals_core(link, context, cvs, probe, key, tol))
-    assert bias.n_hills == 10
+            check_engine_equals_core(link, context, jacobians, probe, tol)
+    assert bias.n_hills == 6
 
 
-@pytest.mark.parametrize("key", ["Reference", "OpenCL-single", "OpenCL-mixed"])
+@pytest.mark.parametrize("key", ["Reference", "OpenCL-mixed"])
 def test_cvforce_follows_every_deposit_of_a_running_simulation(key):
     """The dipeptide with the reporter depositing every 10 steps: after every deposit the engine's bias
     energy equals bias.evaluate at the engine's own CVs (no pending-hill approximation)."""
@@ -189,7 +197,7 @@ def test_cvforce_follows_every_deposit_of_a_running_simulation(key):
     sim = app.Simulation(top, system, integrator, platform, props)
     sim.context.setPositions(pos)
     sim.reporters.append(link.reporter(stride=10))
-    for k in range(1, 16):
+    for k in range(1, 9):
         sim.step(10)
         assert bias.n_hills == k
         s = link.cv_values(sim)
