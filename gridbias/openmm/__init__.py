@@ -289,7 +289,7 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, route="auto", 
     engine = EngineBias(openmm, system, resolved, bias, route=route, pending=int(pending_hills),
                         group=int(force_group), prefix=prefix)
     link = BiasLink(system, resolved, bias, engine, int(force_group), name)
-    link._plan = (planned, auto)
+    link._plan = (planned, auto and not pending_hills)  # pending hills, not the platform, chose compound
     return link
 
 

@@ -273,6 +273,13 @@ def test_a_link_on_another_platform_than_planned_says_so(caplog):
     with caplog.at_level("WARNING", logger="gridbias.openmm"):
         link._check_plan(context.getPlatform().getName())
     assert "chosen for the CPU platform, but this Context runs on Reference" in caplog.text
+    # pending hills asked for: the compound route is the user's choice, not the platform's, so no notice
+    cvs, bias, system, _ = make_case("1d-periodic", route="compound", pending_hills=0)
+    chosen = gbo.attach(free_particles(7), cvs, bias, platform="CPU", pending_hills=3)
+    caplog.clear()
+    with caplog.at_level("WARNING", logger="gridbias.openmm"):
+        chosen._check_plan("Reference")
+    assert "chosen for" not in caplog.text
 
 
 def test_table_size_limit_is_refused_clearly():
