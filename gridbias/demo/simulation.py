@@ -93,7 +93,7 @@ class _FrameLog:
 
 
 # ---------------------------------------------------------------------------------------------- the run
-def _choose_platform(requested, system, positions, stream, checkpoint_platform):
+def _choose_platform(requested, system, positions, stream, checkpoint_platform, probe, stride):
     from .dipeptide import fastest_platform
 
     if requested != "auto":
@@ -102,9 +102,9 @@ def _choose_platform(requested, system, positions, stream, checkpoint_platform):
         say(stream, f"platform: {checkpoint_platform} (the one the checkpoint was written on, so the run "
                      "continues bit for bit)")
         return checkpoint_platform
-    name, rates = fastest_platform(system, positions, seconds=0.5)
+    name, rates = fastest_platform(system, positions, seconds=0.5, attach=probe, stride=stride)
     timed = ", ".join(f"{p} {r:,.0f} steps/s" for p, r in sorted(rates.items(), key=lambda x: -x[1]))
-    say(stream, f"platform: {name} (timed: {timed})")
+    say(stream, f"platform: {name} (timed with the bias attached and depositing: {timed})")
     return name
 
 
@@ -152,11 +152,13 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
     bias = gbo.make_bias(cvs, lower=[-math.pi] * d, upper=[math.pi] * d, bins=[settings.bins] * d,
                          sigma=[settings.sigma] * d, height=settings.height, temperature=settings.temperature,
                          bias_factor=settings.bias_factor)
+    def probe(system_copy, name):  # what each platform would run: its route, a copy of the bias
+        return gbo.attach(system_copy, cvs, bias.copy(), platform=name)
+
     platform = _choose_platform(settings.platform, system, positions, stream,
-                                None if previous is None else previous.platform)
-    # On the Reference platform (the fastest for 22 atoms) the CustomCVForce route is cheaper per step and per
-    # table push than the compound route (bench/README.md, "OpenMM adapter"); elsewhere the compound route is.
-    link = gbo.attach(system, cvs, bias, route="cvforce" if platform == "Reference" else "compound")
+                                None if previous is None else previous.platform, probe, settings.stride)
+    # attach picks the route for the platform (gridbias.openmm.routes; bench/README.md, "OpenMM adapter").
+    link = gbo.attach(system, cvs, bias, platform=platform)
     simulation = make_simulation(topology, system, positions, temperature=settings.temperature,
                                  platform=platform, seed=settings.seed)
     write_pdb(os.path.join(folder, START), topology, positions)  # after the checks that may refuse the run

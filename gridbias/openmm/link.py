@@ -54,12 +54,13 @@ class BiasLink:
         self._bias = bias
         self._engine = engine
         self._context = None  # the Context the engine state below belongs to
-        self._folded_values = np.array(bias.values, copy=True)
+        self._folded_values = self._folded_copy(bias.values)
         self._n_folded = bias.n_hills
         self._n_pending = 0
         self._engine_cvs = [i for i, cv in enumerate(self.cvs) if not cv.geometric]
         self._periodic_box = engine.periodic_box
         self._reporters = weakref.WeakSet()
+        self._plan = (None, False)  # (platform the route was chosen for, chosen automatically); set by attach
         self._blown_up_at = None  # step at which the run was declared blown up (cleared by restore)
 
     # -- properties -------------------------------------------------------------------------------
@@ -103,6 +104,11 @@ class BiasLink:
         return float(in_md_units(state.getPotentialEnergy()))
 
     # -- engine state -----------------------------------------------------------------------------
+    def _folded_copy(self, values):
+        """The table's node values to remember, or None when the engine holds no pending hills (then the
+        table is the bias itself at every step and nothing needs copying)."""
+        return None if self._engine.pending == 0 else np.array(values, copy=True)
+
     def _bind(self, context):
         """Make sure the engine in ``context`` applies the current bias (first use, or a new Context)."""
         if self._context is context and self._n_folded + self._n_pending == self._bias.n_hills:
@@ -110,11 +116,24 @@ class BiasLink:
         if not same_object(context.getSystem(), self.system):
             raise ParameterError("this simulation's System is not the one the bias was attached to; "
                                  "call gbo.attach on the System you pass to the Simulation")
+        self._check_plan(context.getPlatform().getName())
         self._fold(context)
+
+    def _check_plan(self, platform):
+        """Log a notice when the route was chosen automatically for another platform than this one and
+        would differ here."""
+        from .routes import choose
+
+        planned, auto = self._plan
+        self._plan = (planned, False)  # one notice per link
+        if auto and planned != platform and choose(platform, not self._engine_cvs) != self.route:
+            _log.warning("the bias route %r was chosen for the %s platform, but this Context runs on %s, "
+                         "where route %r is cheaper: pass platform=%r to gbo.attach", self.route, planned, platform,
+                         choose(platform, not self._engine_cvs), platform)
 
     def _fold(self, context):
         try:
-            self._engine.push_table(context, self._bias.values)
+            self._engine.push_table(context, self._bias.values, self._bias._coef)
         except Exception as exc:
             if "not present in the Context" in str(exc):
                 raise ParameterError(
@@ -124,7 +143,7 @@ class BiasLink:
             raise
         self._engine.clear_slots(context, self._engine.pending if self._context is not context else self._n_pending)
         self._context = context
-        self._folded_values = np.array(self._bias.values, copy=True)
+        self._folded_values = self._folded_copy(self._bias.values)
         self._n_folded = self._bias.n_hills
         self._n_pending = 0
 
@@ -192,7 +211,8 @@ class BiasLink:
             n_particles=self.system.getNumParticles(), bias_state=bias_state, bias_arrays=bias_arrays,
             engine={"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
                     "n_pending": self._n_pending, "name": self.name},
-            folded_values=self._folded_values, md_checkpoint=context.createCheckpoint(),
+            folded_values=self._bias.values if self._folded_values is None else self._folded_values,
+            md_checkpoint=context.createCheckpoint(),
             positions=positions, velocities=velocities,
             box=np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float),
             openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z")))
@@ -265,13 +285,13 @@ class BiasLink:
             self._context = context
             self._fold(context)
             return
-        self._engine.push_table(context, folded)
+        self._engine.push_table(context, folded, self._bias._coef)
         self._engine.clear_slots(context, self._engine.pending)
         centers, heights = self._bias.history.centers, self._bias.history.heights
         for j in range(pending):
             self._engine.set_slot(context, j, centers[n_folded + j], heights[n_folded + j])
         self._context = context
-        self._folded_values = np.array(folded, copy=True)
+        self._folded_values = self._folded_copy(folded)
         self._n_folded = n_folded
         self._n_pending = pending
 
