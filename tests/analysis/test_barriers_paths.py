@@ -142,7 +142,7 @@ def test_double_well_barrier_through_a_run(seed):
 
 
 @needs_jit
-@pytest.mark.parametrize("seed", [1, 2])
+@pytest.mark.parametrize("seed", [1, pytest.param(2, marks=pytest.mark.slow)])
 def test_mueller_brown_stationary_points_through_a_run(seed):
     # Müller-Brown scaled so M_A -> S1 is 20 kT; M_C is 1.6 kT deep, kept as a basin with min_depth 1 kT.
     # gamma 6, sigma 0.05 nm, spacing sigma / 2.
