@@ -197,7 +197,7 @@ def _mark_basins(ax, basins, scales, ndim, curve=None, shown=None):
         coords, labels = _closed_periodic(basins.grid, basins.grid.axes, basins.labels.astype(float))
         if shown is not None:
             labels = np.where(shown, labels, np.nan)
-        x, y = (c * s for c, s in zip(coords, scales))
+        x, y = (c * s for c, s in zip(coords, scales, strict=True))
         ax.contour(x, y, np.ma.masked_invalid(labels.T), levels=np.arange(basins.n_basins - 1) + 0.5,
                    colors="white", linewidths=0.9, linestyles="dotted")
 
@@ -227,8 +227,8 @@ def _mark_crossings(ax, crossings, grid, scales, ndim, curve=None):
 
 
 def plot_free_energy(result, *, ax=None, basins=None, crossings=None, names=(), angular=None,
-                     angle_unit: str = "rad", energy_unit: str = "kJ/mol", max_free_energy: float | None = None,
-                     level_step=None):
+                     angle_unit: str = "rad", energy_unit: str = "kJ/mol",
+                     max_free_energy: float | None = None, level_step=None):
     """Plot a free-energy profile (1-D curve with error band) or surface (2-D filled contours).
 
     Parameters
@@ -293,7 +293,7 @@ def plot_free_energy(result, *, ax=None, basins=None, crossings=None, names=(), 
         if crossings is not None:
             _mark_crossings(ax, crossings, None, scales, 1, (np.asarray(coords[0]), y))
         return figure
-    x, y = (np.asarray(c) * s for c, s in zip(coords, scales))
+    x, y = (np.asarray(c) * s for c, s in zip(coords, scales, strict=True))
     data = fes * factor
     step = level_step if level_step is not None else kT * factor
     if max_free_energy is None:

@@ -510,9 +510,9 @@ class _Integrator:
 
     def advance(self, n_steps, grid_args, wall_args, cv_index, use_bias):
         noise = self.noise_scale * self.rng.standard_normal((n_steps, self.x.shape[0]))
-        _dynamics.baoab(self.kind, self.params, use_bias, *grid_args, *wall_args, cv_index, self.x, self.v, noise,
-               self.step, self.record_every, self.dt, self.friction, self.mass,
-               self.positions, self.velocities, self.potential_energies, self.bias_energies)
+        _dynamics.baoab(self.kind, self.params, use_bias, *grid_args, *wall_args, cv_index, self.x, self.v,
+                        noise, self.step, self.record_every, self.dt, self.friction, self.mass,
+                        self.positions, self.velocities, self.potential_energies, self.bias_energies)
         self.step += n_steps
 
     def trajectory(self):

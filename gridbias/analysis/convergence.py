@@ -12,8 +12,9 @@ from .basins import Basins, count_transitions
 from .differences import BasinDifferences, basin_differences_from_bias, basin_differences_from_frames
 from .reweighting import FrameWeights, offset_weights
 
-__all__ = ["Criterion", "ConvergenceVerdict", "drift_criterion", "agreement_criterion", "transition_criterion",
-           "height_criterion", "assess_convergence", "DEFAULT_WINDOW_FRACTION", "DEFAULT_DRIFT_KT",
+__all__ = ["Criterion", "ConvergenceVerdict", "drift_criterion", "agreement_criterion",
+           "transition_criterion", "height_criterion", "assess_convergence", "DEFAULT_WINDOW_FRACTION",
+           "DEFAULT_DRIFT_KT",
            "DEFAULT_DRIFT_Z", "DEFAULT_AGREEMENT_Z", "DEFAULT_AGREEMENT_KT", "DEFAULT_MIN_TRANSITIONS",
            "DEFAULT_MAX_HEIGHT_FRACTION", "DEFAULT_N_POINTS"]
 
@@ -209,7 +210,8 @@ def drift_criterion(differences: BasinDifferences, *, window_fraction: float = D
         detail = f"drift {measured:.2f} kBT; {problem}"
     else:
         detail = (f"drift {measured:.2f} +/- {error:.2f} kBT over {span} ({int(window.sum())} estimates, "
-                  f"{differences.source}); allowed < {tol:g} kBT + {z:g} standard errors = {threshold:.2f} kBT")
+                  f"{differences.source}); allowed < {tol:g} kBT + {z:g} standard errors = "
+                  f"{threshold:.2f} kBT")
     return Criterion(name, measured, threshold, "<", "kBT", passed, detail)
 
 

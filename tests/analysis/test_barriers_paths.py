@@ -57,7 +57,7 @@ def test_mueller_brown_exact_surface_saddles_and_barriers():
     crossings = find_crossings(grid, fes, kT, basins)
     pairs = {frozenset(c.basins): c for c in crossings}
     # A (M_A) - C (M_C) over S1, C - B (M_B) over S2; A and B are joined only through C
-    names = dict(zip(("M_A", "M_B", "M_C"), basins.names))
+    names = dict(zip(("M_A", "M_B", "M_C"), basins.names, strict=True))
     assert set(pairs) == {frozenset((names["M_A"], names["M_C"])), frozenset((names["M_C"], names["M_B"]))}
     for saddle, (low, high) in (("S1", ("M_A", "M_C")), ("S2", ("M_C", "M_B"))):
         c = pairs[frozenset((names[low], names[high]))]
@@ -91,7 +91,8 @@ def test_periodic_axis_wraps_the_saddle_and_the_path():
     # exact: the lowest of the two maxima of the 1-D function (a dense evaluation)
     dense = np.linspace(-np.pi, np.pi, 200001)
     f_dense = 10.0 * (1 - np.cos(2 * (dense - 1.2))) + 2.0 * np.sin(dense - 1.2 - np.pi / 2)
-    maxima = [i for i in range(1, dense.size - 1) if f_dense[i] > f_dense[i - 1] and f_dense[i] >= f_dense[i + 1]]
+    maxima = [i for i in range(1, dense.size - 1)
+              if f_dense[i] > f_dense[i - 1] and f_dense[i] >= f_dense[i + 1]]
     lowest = min(maxima, key=lambda i: f_dense[i])
     assert abs((c.saddle[0] - dense[lowest] + np.pi) % (2 * np.pi) - np.pi) <= grid.spacing[0]
     steps = np.abs(np.diff(c.path[:, 0]))
@@ -114,7 +115,8 @@ def test_double_well_barrier_through_a_run(seed):
     surface = surface_at(bias)
     basins = find_basins(grid, surface.free_energy, KT)
     weights = offset_weights(bias, traj.times, frame_bias=traj.bias_energies)
-    crossings = find_crossings(grid, surface.free_energy, KT, basins, weights=weights, frame_cvs=traj.positions)
+    crossings = find_crossings(grid, surface.free_energy, KT, basins, weights=weights,
+                               frame_cvs=traj.positions)
     assert len(crossings) == 1
     c = crossings[0]
     exact = np.array([u[1] - u[0], u[1] - u[2]])  # from the left and from the right well
@@ -135,7 +137,8 @@ def test_double_well_barrier_through_a_run(seed):
         return -KT * np.log(np.sum(q[nodes] * np.exp(-f / KT)) / np.sum(q[nodes]))
 
     same_cells = np.array([cell(c.saddle[0]) - cell(c.minima[k, 0]) for k in (0, 1)])
-    assert np.all(np.abs(c.barriers_reweighted - same_cells) <= 3 * error), (c.barriers_reweighted, same_cells)
+    assert np.all(np.abs(c.barriers_reweighted - same_cells) <= 3 * error), (
+        c.barriers_reweighted, same_cells)
     # the surface: the analytic barrier within 3 frames errors + 0.5 kBT (hills of width sigma round the
     # top and the minima off; common practice, no source)
     assert np.all(np.abs(c.barriers - exact) <= 3 * error + 0.5 * KT), (c.barriers, exact, error)
@@ -149,14 +152,16 @@ def test_mueller_brown_stationary_points_through_a_run(seed):
     surface_model = MuellerBrown.for_barrier(20.0, T)
     scale = surface_model.scale
     grid = gb.Grid([-2.0, -1.0], [1.6, 2.6], [144, 144])
-    walls = [gb.Wall(cv=0, bound=-1.5, k=5000.0, side="below"), gb.Wall(cv=1, bound=2.2, k=5000.0, side="above")]
+    walls = [gb.Wall(cv=0, bound=-1.5, k=5000.0, side="below"),
+             gb.Wall(cv=1, bound=2.2, k=5000.0, side="above")]
     bias = gb.GridBias(grid, sigma=[0.05, 0.05], height=0.5 * KT, temperature=T, bias_factor=6.0, walls=walls)
     traj = run_metadynamics(surface_model, bias, [-0.558, 1.442], n_deposits=10000, stride=100, dt=0.004,
                             friction=10.0, rng=np.random.default_rng(seed), record_every=20)
     surface = surface_at(bias)
     basins = find_basins(grid, surface.free_energy, KT, min_depth_kT=1.0, core_kT=0.5)
     weights = offset_weights(bias, traj.times, frame_bias=traj.bias_energies)
-    crossings = find_crossings(grid, surface.free_energy, KT, basins, weights=weights, frame_cvs=traj.positions)
+    crossings = find_crossings(grid, surface.free_energy, KT, basins, weights=weights,
+                               frame_cvs=traj.positions)
     nearest = {name: min(MB_MINIMA, key=lambda m: np.hypot(*(np.array(MB_MINIMA[m]) - basins.markers[b])))
                for b, name in enumerate(basins.names)}
     assert sorted(nearest.values()) == ["M_A", "M_B", "M_C"]
@@ -175,7 +180,8 @@ def test_mueller_brown_stationary_points_through_a_run(seed):
             exact = scale * (mb_energy(MB_SADDLES[saddle])[0] - mb_energy(MB_MINIMA[nearest[name]])[0])
             # the surface against the analytic barrier: 3 frames errors + 0.75 kBT (hill smoothing and a
             # shallow minimum located on a noisy surface; common practice, no source)
-            assert abs(c.barriers[side] - exact) <= 3 * error[side] + 0.75 * KT, (saddle, name, c.barriers, exact)
+            assert abs(c.barriers[side] - exact) <= 3 * error[side] + 0.75 * KT, (
+                saddle, name, c.barriers, exact)
             # the reweighted frames against the exact surface between the same node cells, within 3 errors
             exact_cells = []
             for point in (c.saddle, c.minima[side]):
