@@ -51,7 +51,9 @@ class StoppingRun:
         From :mod:`gridbias.stopping`, combined with ``|`` and ``&``.
     checkpoint : str or os.PathLike
         Where the run is saved. If the file exists, the run continues from it: the bias is loaded into
-        ``bias`` (in place) and ``state``, ``step``, ``time`` and ``decision`` are restored.
+        ``bias`` (in place) and ``state``, ``step`` and ``time`` are restored. A decision recorded there
+        stands (``decision`` is set and the loop does nothing more) when the same rule is among
+        ``rules``; a run stopped by a time budget, or by a rule since changed, continues.
     checkpoint_every : int, keyword-only, optional
         Steps between checkpoints (besides the final one).
 
@@ -108,7 +110,8 @@ class StoppingRun:
             raise CheckpointError(f"{self.path}: the frames' arrays do not fit together ({times.shape}, "
                                   f"{cvs.shape}, {frame_bias.shape})")
         self.bias._adopt(loaded)
-        self.step, self.time, self.decision = step, time, stop
+        self.step, self.time = step, time
+        self.decision = stop if self.referee.confirms(stop) else None
         self.state = {k[6:]: v for k, v in arrays.items() if k.startswith("state.")}
         self._times, self._cvs, self._frame_bias = list(times), list(cvs), list(frame_bias)
 

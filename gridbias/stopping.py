@@ -211,7 +211,9 @@ class AllRules(StopRule):
         return None if any(r is None for r in reasons) else "; ".join(reasons)
 
     def steps_left(self, progress):
-        return AnyRule.steps_left(self, progress)
+        # a rule that already holds waits for the others
+        left = [n for n in (r.steps_left(progress) for r in self.rules) if n]
+        return min(left) if left else None
 
     def describe(self):
         return "(" + " & ".join(r.describe() for r in self.rules) + ")"
@@ -508,6 +510,21 @@ class Referee:
         self.rules, self.bias = rules, bias
         self.started = _time.perf_counter()
         self._mark = None  # (perf_counter, step) at the start of the current stretch
+
+    def confirms(self, decision) -> bool:
+        """Does a decision read from a checkpoint end the run under these rules?
+
+        Yes when the rule that made it is one of these rules, unless it was a time budget: a job that ran
+        out of time continues in the next one. A rule changed since (e.g. a larger MaxSteps) continues.
+        """
+        if decision is None or decision.rule.startswith(TimeBudget.name):
+            return False
+        found, stack = set(), [self.rules]
+        while stack:
+            rule = stack.pop()
+            found.add(rule.describe())
+            stack.extend(getattr(rule, "rules", ()))
+        return decision.rule in found
 
     def _comm(self):
         comm = getattr(self.bias, "comm", None)
