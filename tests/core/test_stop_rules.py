@@ -1,4 +1,4 @@
-"""Stop rules and a self-stopping run of a Python MD loop (the core's BAOAB driver, Leimkuhler & Matthews 2013).
+"""Stop rules and a self-stopping run of a Python MD loop (the core BAOAB driver, Leimkuhler & Matthews 2013).
 
 Checked: each rule stops the run for its reason and records it in the checkpoint; running the same loop
 again continues an unfinished run and does nothing more for a finished one; a time budget ends a run
