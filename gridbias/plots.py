@@ -425,7 +425,7 @@ def plot_cv_timeseries(times, cvs, *, ax=None, names=(), angular=None, angle_uni
 
 
 def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None = None,
-                      max_fraction: float | None = None):
+                      max_height_fraction: float | None = None):
     """Plot hill heights against simulated time on a log scale.
 
     Parameters
@@ -436,7 +436,7 @@ def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None =
     ax : matplotlib Axes, keyword-only, optional
     initial_height : float, kJ/mol, keyword-only, optional
         Drawn as a reference line.
-    max_fraction : float, keyword-only, optional
+    max_height_fraction : float, keyword-only, optional
         With ``initial_height``: the height-decay threshold of the convergence verdict, drawn as a line.
 
     Returns
@@ -454,9 +454,9 @@ def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None =
     if initial_height is not None:
         ax.axhline(initial_height, color=_INK, linewidth=0.8, alpha=0.5, linestyle="--",
                    label="initial height")
-        if max_fraction is not None:
-            ax.axhline(max_fraction * initial_height, color=_ACCENT, linewidth=1.0,
-                       label=f"{100 * max_fraction:g}% of the initial height")
+        if max_height_fraction is not None:
+            ax.axhline(max_height_fraction * initial_height, color=_ACCENT, linewidth=1.0,
+                       label=f"{100 * max_height_fraction:g}% of the initial height")
     ax.set_yscale("log")
     ax.set_xlabel("simulated time (ps)")
     ax.set_ylabel("hill height (kJ/mol)")

@@ -1,4 +1,4 @@
-"""The engine side of the OpenMM adapter (private): table layout, force construction, pushing the bias.
+"""The OpenMM adapter's engine forces: table layout, force construction, pushing the bias into a Context.
 
 Two forces carry a bias (both in the link's force group):
 
@@ -6,9 +6,9 @@ Two forces carry a bias (both in the link's force group):
   nothing but the table call plus the CV definitions, because OpenMM recompiles a force's expression on
   every ``updateParametersInContext`` (DESIGN.md: every extra term costs time at every push);
 - the *hill force* applies the walls and up to ``pending`` recent hills as exact Gaussians whose
-  heights and centres are global parameters (``Context.setParameter``, ~1 us, no recompile). It is
-  never pushed, so its expression may be long. Every ``pending + 1`` deposits the pending hills are
-  folded into the table with one push.
+  heights and centres are global parameters (``Context.setParameter``: no recompile, about a microsecond,
+  bench/README.md). It is never pushed, so its expression may be long. Every ``pending + 1`` deposits the
+  pending hills are folded into the table with one push.
 
 On the CustomCVForce route both live in one CustomCVForce (its push refits the tables but recompiles
 cheaply), with the CVs as inner forces.
@@ -27,7 +27,7 @@ import math
 
 import numpy as np
 
-from .errors import ParameterError
+from ..errors import ParameterError
 
 __all__ = ["PERIODIC_PADDING", "TableLayout", "EngineBias", "require_openmm", "same_object"]
 
@@ -85,7 +85,7 @@ class TableLayout:
         self.maximum = np.array(maximum)
         strides = np.cumprod((1,) + tuple(grid.shape[::-1]))[:-1][::-1]  # C-order strides of the core array
         mesh = np.meshgrid(*node_index, indexing="ij")
-        flat = sum(np.asarray(a, dtype=np.int64) * int(s) for a, s in zip(mesh, strides))
+        flat = sum(np.asarray(a, dtype=np.int64) * int(s) for a, s in zip(mesh, strides, strict=True))
         self.index_t = np.ascontiguousarray(flat.ravel(order="F"))
         self.ndim = d
 
@@ -280,22 +280,12 @@ class EngineBias:
 
 def _inner_force(openmm, cv, periodic_box):
     """A force whose energy is the CV, for CustomCVForce."""
-    if not cv.geometric:
-        return openmm.XmlSerializer.deserialize(cv.serialized())
-    if type(cv).__name__ == "Dihedral":
-        f = openmm.CustomTorsionForce("theta")
-        f.addTorsion(*cv.atoms, [])
-    elif type(cv).__name__ == "Angle":
-        f = openmm.CustomAngleForce("theta")
-        f.addAngle(*cv.atoms, [])
-    elif type(cv).__name__ == "Distance":
-        f = openmm.CustomBondForce("r")
-        f.addBond(*cv.atoms, [])
-    else:
-        f = EngineBias._bond_force(openmm, [cv], "cv0", periodic_box)
-        return f
-    f.setUsesPeriodicBoundaryConditions(periodic_box)
-    return f
+    force = cv.single_force(openmm)
+    if force is None:
+        return EngineBias._bond_force(openmm, [cv], "cv0", periodic_box)
+    if cv.geometric:
+        force.setUsesPeriodicBoundaryConditions(periodic_box)
+    return force
 
 
 def check_route(route, cvs):

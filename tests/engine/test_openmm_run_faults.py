@@ -6,8 +6,8 @@ with checkpoints and a CV log) and checks the guarantees stated in the docstring
 every failure, nothing is deposited from non-finite coordinates, a damaged or foreign file is refused with
 a CheckpointError/CVLogError before anything is changed, and nothing in a file is ever executed. The
 reader-level cases (every truncation and byte flip of a checkpoint or log, hypothesis fuzzing, hard kills
-while writing) are in tests/test_checkpoint.py and tests/test_cvlog.py; here they are repeated only on
-files the adapter itself wrote. A shortened bench/soak_openmm.py (file sizes over a run) is at the top.
+while writing) are in tests/core/test_checkpoint_files.py and tests/core/test_cvlog_files.py; here they are
+repeated only on files the adapter itself wrote. A shortened bench/soak_openmm.py (file sizes over a run) is at the top.
 """
 
 import errno
@@ -40,13 +40,14 @@ mm = pytest.importorskip("openmm")
 from openmm import app  # noqa: E402
 
 import gridbias as gb  # noqa: E402
+import gridbias._files as gbf  # noqa: E402
 import gridbias.checkpoint as gbc  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
 from gridbias.checkpoint import read_checkpoint, write_checkpoint  # noqa: E402
 from gridbias.cvlog import read_cvlog  # noqa: E402
 
 pytestmark = pytest.mark.openmm
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 STRIDE = 20  # deposit (and log) every 20 steps
 BYTES_PER_2D_HILL = 8 * (2 + 2)  # centre (2 float64) + height + time: gridbias/history.py
 LOG_RECORD_BYTES = 8 * 5  # step, time, phi, psi, bias: 5 float64 per record (gridbias/cvlog.py layout)
@@ -139,7 +140,7 @@ def test_soak_checkpoint_grows_by_the_history_only_and_log_by_fixed_records(tmp_
         rows.append((meta["bias"]["n_hills"], ckpt.stat().st_size, meta_bytes, log.stat().st_size,
                      read_cvlog(log).n_records))
     rep.close()
-    hills, size, meta_bytes, log_size, records = (np.array(c) for c in zip(*rows))
+    hills, size, meta_bytes, log_size, records = (np.array(c) for c in zip(*rows, strict=True))
     np.testing.assert_array_equal(hills, np.arange(1, 13) * 500 // STRIDE)
     rest = size - BYTES_PER_2D_HILL * hills - meta_bytes
     assert np.all(rest == rest[0]), f"checkpoint bytes besides history and metadata changed: {rest}"
@@ -151,12 +152,12 @@ def test_soak_checkpoint_grows_by_the_history_only_and_log_by_fixed_records(tmp_
 
 # ------------------------------------------------------------------------------------ disk full, I/O errors
 class FailingWrites:
-    """Replaces gridbias.checkpoint's chunk writer: while armed, half a chunk lands, then ENOSPC."""
+    """Replaces the atomic writer's chunk writer (gridbias._files): while armed, half a chunk lands, then ENOSPC."""
 
     def __init__(self, monkeypatch):
         self.armed = 0  # number of checkpoint writes still to fail
         self.failed = 0
-        real = gbc._write_all
+        real = gbf.write_all
 
         def write_all(fd, data):
             if self.armed:
@@ -167,7 +168,7 @@ class FailingWrites:
                 raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
             return real(fd, data)
 
-        monkeypatch.setattr(gbc, "_write_all", write_all)
+        monkeypatch.setattr(gbf, "write_all", write_all)
 
 
 def test_failed_checkpoint_is_logged_and_retried(tmp_path, monkeypatch, caplog):
@@ -196,7 +197,7 @@ def test_failed_checkpoint_is_logged_and_retried(tmp_path, monkeypatch, caplog):
     sim.step(100)  # the next checkpoint is written and holds every hill
     assert rep.checkpoint_failures == 0 and rep.last_checkpoint_step == 400
     other, sim2 = make_run(seed=2)
-    assert other.restore(sim2, ckpt)["step"] == 400
+    assert other.restore(sim2, ckpt).step == 400
     assert other.bias.n_hills == link.bias.n_hills == 20
     np.testing.assert_array_equal(other.bias.history.centers, link.bias.history.centers)
     np.testing.assert_array_equal(other.bias.values, link.bias.values)
@@ -257,7 +258,7 @@ def test_repeated_failures_stop_the_run_and_the_bias_can_still_be_saved(tmp_path
     monkeypatch.undo()  # space is freed: what was in memory is saved to another file and restores
     link.save(sim, tmp_path / "rescued.gbz")
     other, sim2 = make_run(seed=3)
-    assert other.restore(sim2, tmp_path / "rescued.gbz")["step"] == 300
+    assert other.restore(sim2, tmp_path / "rescued.gbz").step == 300
     assert other.bias.n_hills == 15
     np.testing.assert_array_equal(other.bias.values, link.bias.values)
     rep.close()
@@ -335,9 +336,9 @@ def test_second_run_is_refused_and_a_killed_runs_lock_is_taken_over(tmp_path):
     assert [p.name for p in tmp_path.iterdir() if ".tmp-" in p.name] == []
     sim.reporters.append(rep)
     meta = link.restore(sim, path)
-    assert meta["step"] >= 20 and link.bias.n_hills == meta["step"] // 20
+    assert meta.step >= 20 and link.bias.n_hills == meta.step // 20
     sim.step(100)
-    assert read_checkpoint(path)[0]["step"] == meta["step"] + 100
+    assert read_checkpoint(path)[0]["step"] == meta.step + 100
     rep.close()
     assert not Path(str(path) + ".lock").exists()
 
@@ -370,7 +371,7 @@ def test_blown_up_simulation_stops_without_a_hill_and_keeps_the_checkpoint(tmp_p
     other, sim2 = make_run(seed=4)
     rep2 = other.reporter(STRIDE, checkpoint=ckpt, checkpoint_every=40, log=log)
     sim2.reporters.append(rep2)
-    assert other.restore(sim2, ckpt)["step"] == 40 and other.bias.n_hills == 2
+    assert other.restore(sim2, ckpt).step == 40 and other.bias.n_hills == 2
     sim2.step(40)
     assert other.bias.n_hills == 4 and read_checkpoint(ckpt)[0]["step"] == 80
     assert np.isfinite(read_cvlog(log).data).all()
@@ -653,7 +654,7 @@ def test_code_in_metadata_text_is_data(tmp_path):
     path = _rewritten(raw, tmp_path, plant)
     link, sim = make_run()
     meta = link.restore(sim, path)
-    assert meta["platform"] == code and link.bias.n_hills == 10
+    assert meta.platform == code and link.bias.n_hills == 10
     assert not marker.exists()
 
 
