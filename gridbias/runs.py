@@ -70,6 +70,9 @@ class RunCheckpoint:
         The OpenMM version and the local time of writing.
     version : int
         Layout version.
+    stop : dict or None
+        The stop decision recorded by ``BiasLink.run_until`` (``gridbias.stopping.StopDecision.to_dict``),
+        None while the run goes on.
     """
 
     path: str
@@ -90,6 +93,7 @@ class RunCheckpoint:
     openmm_version: str = ""
     written: str = ""
     version: int = CHECKPOINT_VERSION
+    stop: dict | None = None
 
 
 def write_run_checkpoint(path, checkpoint: RunCheckpoint) -> None:
@@ -106,6 +110,8 @@ def write_run_checkpoint(path, checkpoint: RunCheckpoint) -> None:
     meta = {"version": c.version, "bias": c.bias_state, "cvs": list(c.cvs), "labels": list(c.labels),
             "n_particles": int(c.n_particles), "platform": c.platform, "openmm_version": c.openmm_version,
             "step": int(c.step), "time_ps": float(c.time), "engine": dict(c.engine), "written": c.written}
+    if c.stop is not None:
+        meta["stop"] = dict(c.stop)
     arrays = {f"bias.{k}": np.ascontiguousarray(v) for k, v in c.bias_arrays.items()}
     arrays["engine.folded_values"] = np.ascontiguousarray(c.folded_values)
     arrays["md.checkpoint"] = np.frombuffer(c.md_checkpoint, dtype=np.uint8)
@@ -142,6 +148,9 @@ def _parse_run_checkpoint(path, meta, arrays) -> RunCheckpoint:
             raise TypeError("'bias' and 'engine' must be JSON objects")
         engine = dict(engine)
         engine["n_folded"] = int(engine["n_folded"])
+        stop = meta.get("stop")
+        if stop is not None and not (isinstance(stop, dict) and {"rule", "reason", "step"} <= set(stop)):
+            raise TypeError(f"'stop' must be a recorded stop decision, got {stop!r}")
         cvs = tuple(meta["cvs"])
         labels = tuple(str(x) for x in meta["labels"]) if meta.get("labels") else tuple(
             f"cv{i}" for i in range(len(cvs)))
@@ -153,7 +162,7 @@ def _parse_run_checkpoint(path, meta, arrays) -> RunCheckpoint:
             md_checkpoint=arrays["md.checkpoint"].tobytes(), positions=arrays["md.positions"],
             velocities=arrays["md.velocities"], box=arrays["md.box"],
             openmm_version=str(meta.get("openmm_version", "")), written=str(meta.get("written", "")),
-            version=version)
+            version=version, stop=stop)
     except CheckpointError:
         raise
     except KeyError as exc:

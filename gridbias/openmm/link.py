@@ -59,6 +59,7 @@ class BiasLink:
         self._engine_cvs = [i for i, cv in enumerate(self.cvs) if not cv.geometric]
         self._periodic_box = engine.periodic_box
         self._reporters = weakref.WeakSet()
+        self.restored_stop = None  # the stop decision of the last checkpoint restored (dict), if any
 
     # -- properties -------------------------------------------------------------------------------
     bias = property(lambda self: self._bias, doc="The GridBias being applied (restore loads into it).")
@@ -160,11 +161,12 @@ class BiasLink:
         self._reporters.add(rep)
         return rep
 
-    def save(self, simulation, path) -> None:
+    def save(self, simulation, path, *, stop: dict | None = None) -> None:
         """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state.
 
         The file (a run checkpoint, layout in :mod:`gridbias.runs`) is replaced atomically. Nothing is
-        written when positions or velocities are not finite (the last good file stays).
+        written when positions or velocities are not finite (the last good file stays). ``stop`` records
+        a stop decision (``StopDecision.to_dict()``; see :meth:`run_until`).
         """
         openmm = require_openmm()
         context = _context_of(simulation)
@@ -185,7 +187,24 @@ class BiasLink:
             folded_values=self._folded_values, md_checkpoint=context.createCheckpoint(),
             positions=positions, velocities=velocities,
             box=np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float),
-            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z")))
+            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z"), stop=stop))
+
+    def run_until(self, simulation, rules, *, stretch: int | None = None):
+        """Run until a stop rule holds, write a final checkpoint with the decision, and return it.
+
+        Needs this link's reporter (with ``checkpoint=``, and ``log=`` for rules that read frames) in
+        ``simulation.reporters``. If the checkpoint exists and the run has not been restored yet, it is
+        restored first; when it records a decision that still holds under ``rules`` (see
+        ``gridbias.stopping.Referee.confirms``), nothing more is run. With walkers (a shared bias), every
+        walker calls it and all stop together. See :func:`gridbias.openmm.until.run_until`.
+
+        Returns
+        -------
+        gridbias.stopping.StopDecision
+        """
+        from .until import run_until
+
+        return run_until(self, simulation, rules, stretch=stretch)
 
     def restore(self, simulation, path) -> RunCheckpoint:
         """Continue from a checkpoint: restores the bias, the MD state and the engine's bias exactly.
@@ -216,6 +235,7 @@ class BiasLink:
         except (TypeError, ValueError, AttributeError) as exc:
             raise CheckpointError(f"{path}: checkpoint metadata is malformed ({type(exc).__name__}: {exc})") from exc
         folded, n_folded = checkpoint.folded_values, checkpoint.engine["n_folded"]
+        self.restored_stop = checkpoint.stop
         diff = self._bias.describe_difference(bias)
         if diff:
             raise CheckpointError(f"{path}: the bias {diff} (this run vs checkpoint)")
