@@ -516,15 +516,18 @@ class Referee:
 
         Yes when the rule that made it is one of these rules, unless it was a time budget: a job that ran
         out of time continues in the next one. A rule changed since (e.g. a larger MaxSteps) continues.
+        With walkers it is collective: the decision stands for all when it stands for any walker.
         """
-        if decision is None or decision.rule.startswith(TimeBudget.name):
-            return False
-        found, stack = set(), [self.rules]
-        while stack:
-            rule = stack.pop()
-            found.add(rule.describe())
-            stack.extend(getattr(rule, "rules", ()))
-        return decision.rule in found
+        mine = False
+        if decision is not None and not decision.rule.startswith(TimeBudget.name):
+            found, stack = set(), [self.rules]
+            while stack:
+                rule = stack.pop()
+                found.add(rule.describe())
+                stack.extend(getattr(rule, "rules", ()))
+            mine = decision.rule in found
+        comm = self._comm()
+        return any(comm.allgather(mine)) if comm is not None else mine
 
     def _comm(self):
         comm = getattr(self.bias, "comm", None)
