@@ -347,9 +347,16 @@ class Converged(_Costly):
     def __init__(self, *, basins=None, min_depth_kT: float = 2.0, min_hills: int = DEFAULT_MIN_HILLS,
                  max_cost_fraction: float = DEFAULT_MAX_COST_FRACTION, **thresholds):
         super().__init__(max_cost_fraction)
+        from .analysis._checks import as_count, as_fraction, as_positive
+
         unknown = sorted(set(thresholds) - set(self._THRESHOLDS))
         if unknown:
             raise ParameterError(f"unknown threshold(s) {unknown}; allowed: {list(self._THRESHOLDS)}")
+        checks = {"window_fraction": lambda n, v: as_fraction(n, v, allow_zero=False, allow_one=True),
+                  "max_height_fraction": lambda n, v: as_fraction(n, v, allow_zero=False),
+                  "min_transitions": lambda n, v: as_count(n, v, 1)}
+        for name, value in thresholds.items():  # refused now, not at the first check hours later
+            checks.get(name, as_positive)(name, value)
         self.basins = basins
         self.min_depth_kT = min_depth_kT
         self.min_hills = _count("min_hills", min_hills, 1)

@@ -140,6 +140,8 @@ def test_bad_rules_and_runs_are_refused(tmp_path):
         stopping.ErrorBelow(BOXES, "X", "L", 0.5)
     with pytest.raises(ParameterError, match="unknown threshold"):
         stopping.Converged(drift=1)
+    with pytest.raises(ParameterError, match="max_height_fraction must be in"):
+        stopping.Converged(max_height_fraction=1.5)
     with pytest.raises(ParameterError, match="rules must be a StopRule"):
         StoppingRun(new_bias(), "converged", checkpoint=tmp_path / "x.gbz")
     run = StoppingRun(new_bias(), stopping.MaxSteps(10), checkpoint=tmp_path / "y.gbz")
