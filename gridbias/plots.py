@@ -542,7 +542,7 @@ def plot_crossing_profile(crossing, *, ax=None, kT: float | None = None, energy_
         ax.errorbar(x[ok], crossing.path_reweighted[ok] * factor, yerr=crossing.path_errors[ok] * factor,
                     marker="o", markersize=3, linestyle="none", capsize=2, color=_SERIES[2], alpha=0.8,
                     label="reweighted frames ± 1 standard error")
-    top = crossing.barriers[0]
+    top = crossing.barriers[0]  # the saddle, relative to the minimum of a
     at = x[int(np.argmax(np.all(np.isclose(crossing.path, crossing.saddle), axis=1)))]
     ax.axvline(at, color=_ACCENT, linewidth=1.0, linestyle="--", label="saddle point")
     a, b = crossing.basins
@@ -550,11 +550,11 @@ def plot_crossing_profile(crossing, *, ax=None, kT: float | None = None, energy_
                 fontweight="bold")
     ax.annotate(b, (1.0, (top - crossing.barriers[1]) * factor), xytext=(0, -14), textcoords="offset points",
                 ha="center", color=_ACCENT, fontweight="bold")
-    ax.annotate(f"{crossing.barriers[0] * factor:.3g} from {a}\n{crossing.barriers[1] * factor:.3g} from {b}",
-                (at, top * factor), xytext=(8, -4), textcoords="offset points", va="top", color=_INK)
+    ax.set_title(f"{a} - {b}: barrier {crossing.barriers[0] * factor:.3g} {unit} from {a}, "
+                 f"{crossing.barriers[1] * factor:.3g} from {b}", loc="left", fontsize="medium")
     ax.set_xlabel(f"progress along the minimum free-energy path ({a} = 0, {b} = 1)")
     ax.set_ylabel(f"free energy relative to {a} ({unit})")
     ax.set_xlim(-0.04, 1.04)
     _secondary_energy_axis(ax, kT, energy_unit, "y")
-    ax.legend(frameon=False, loc="upper left")
+    ax.legend(frameon=True, framealpha=0.85, edgecolor="none", loc="best", fontsize="small")
     return figure

@@ -39,13 +39,10 @@ DEFAULT_MIN_HILLS = 100
 
 def _in_unit(name, value, unit_name, allowed):
     """A float from a number or an ``openmm.unit`` quantity (converted to ``unit_name``)."""
-    if hasattr(value, "value_in_unit"):
-        from openmm import unit
+    if hasattr(value, "value_in_unit_system"):
+        from .openmm._units import in_md_units
 
-        try:
-            value = value.value_in_unit(getattr(unit, unit_name))
-        except Exception:
-            raise ParameterError(f"{name} must be {allowed}, got {value!r}") from None
+        value = in_md_units(value, name=name, unit=unit_name)
     if isinstance(value, bool):
         raise ParameterError(f"{name} must be {allowed}, got {value!r}")
     try:

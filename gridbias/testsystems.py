@@ -24,21 +24,12 @@ from . import _dynamics
 from .bias import KB, GridBias
 from .errors import ParameterError
 
-__all__ = [
-    "HarmonicWell",
-    "DoubleWell",
-    "MuellerBrown",
-    "CoupledDoubleWell",
-    "SwitchingDoubleWell",
-    "Trajectory",
-    "run_langevin",
-    "run_metadynamics",
-]
+__all__ = ["HarmonicWell", "DoubleWell", "MuellerBrown", "CoupledDoubleWell", "SwitchingDoubleWell", "Trajectory",
+           "run_langevin", "run_metadynamics"]
 
 # Integer ids that select a potential inside the numba kernel.
-_HARMONIC, _DOUBLE_WELL, _MUELLER_BROWN, _COUPLED_DOUBLE_WELL, _SWITCHING_DOUBLE_WELL = (
-    _dynamics.HARMONIC, _dynamics.DOUBLE_WELL, _dynamics.MUELLER_BROWN, _dynamics.COUPLED_DOUBLE_WELL,
-    _dynamics.SWITCHING_DOUBLE_WELL)
+_HARMONIC, _DOUBLE_WELL, _MUELLER_BROWN, _COUPLED_DOUBLE_WELL = (
+    _dynamics.HARMONIC, _dynamics.DOUBLE_WELL, _dynamics.MUELLER_BROWN, _dynamics.COUPLED_DOUBLE_WELL)
 
 # Müller & Brown 1979, the coefficient table (rows A, a, b, c, x0, y0; one column per term).
 _MB_TABLE = np.array(
@@ -361,68 +352,42 @@ class CoupledDoubleWell(_Potential):
 
 @dataclass(frozen=True)
 class SwitchingDoubleWell(_Potential):
-    """A double well in x whose tilt is set by a slow double well in y; meant to be biased along x alone.
+    """A double well in x tilted by a slow, unbiased switch y; meant to be biased along x alone.
 
-    U(x, y) = h (x^2 - 1)^2 + h_y (y^2 - 1)^2 + tilt_y y + coupling x y
-
-    Parameters
-    ----------
-    barrier : float, kJ/mol
-        h, the barrier along x.
-    switch_barrier : float, kJ/mol
-        h_y, the barrier along y: high, so y flips rarely (a slow degree of freedom).
-    switch_tilt : float, kJ/mol/nm
-        Makes y = -1 the stable side of the switch (for a positive value) and y = +1 metastable.
-    coupling : float, kJ/mol/nm^2
-        The switch tilts the x well: with y = +1 the well at x = -1 is favoured, with y = -1 the one at
-        x = +1.
-
-    Notes
-    -----
-    A run started at y = +1 that flips to y = -1 once and never back samples two different free-energy
-    profiles along x, one after the other; the exact F(x) integrates y out (:meth:`free_energy`). This is
-    the textbook failure of a CV set that misses a slow degree of freedom (e.g. Laio & Gervasio, Rep.
-    Prog. Phys. 71, 126601, 2008).
+    U(x, y) = h (x^2 - 1)^2 + h_y (y^2 - 1)^2 + tilt_y y + coupling x y: ``barrier`` h and ``switch_barrier``
+    h_y (high: y flips rarely) in kJ/mol, ``switch_tilt`` (kJ/mol/nm; y = -1 stable, +1 metastable),
+    ``coupling`` (kJ/mol/nm^2; y = +1 favours x = -1). A run that flips y once samples two profiles along x
+    in turn, like CVs that miss a slow degree of freedom; the exact F(x) integrates y out.
     """
 
     barrier: float = 20.0
     switch_barrier: float = 27.0
     switch_tilt: float = 5.0
     coupling: float = 4.0
-    ndim = 2
-    cv_axes = (0,)
+    ndim, cv_axes, domain = 2, (0,), ((-2.5, 2.5), (-2.5, 2.5))
 
     def __post_init__(self):
-        object.__setattr__(self, "barrier", _positive("barrier", self.barrier))
-        object.__setattr__(self, "switch_barrier", _positive("switch_barrier", self.switch_barrier))
-        object.__setattr__(self, "switch_tilt", _finite("switch_tilt", self.switch_tilt))
-        object.__setattr__(self, "coupling", _finite("coupling", self.coupling))
-
-    @property
-    def domain(self):
-        """((x_lo, x_hi), (y_lo, y_hi)) nm."""
-        return ((-2.5, 2.5), (-2.5, 2.5))
+        for name in ("barrier", "switch_barrier"):
+            object.__setattr__(self, name, _positive(name, getattr(self, name)))
+        for name in ("switch_tilt", "coupling"):
+            object.__setattr__(self, name, _finite(name, getattr(self, name)))
 
     def energy_gradient(self, points):
         """Energy and gradient at ``points`` (n, 2) nm -> (n,) kJ/mol, (n, 2) kJ/mol/nm."""
-        xy_n2 = _points(points, 2)
-        x_n, y_n = xy_n2[:, 0], xy_n2[:, 1]
+        x_n, y_n = _points(points, 2).T
         u_n, w_n = x_n**2 - 1.0, y_n**2 - 1.0
         energy_n = (self.barrier * u_n**2 + self.switch_barrier * w_n**2 + self.switch_tilt * y_n
                     + self.coupling * x_n * y_n)
-        grad_n2 = np.empty_like(xy_n2)
-        grad_n2[:, 0] = 4.0 * self.barrier * u_n * x_n + self.coupling * y_n
-        grad_n2[:, 1] = 4.0 * self.switch_barrier * w_n * y_n + self.switch_tilt + self.coupling * x_n
-        return energy_n, grad_n2
+        return energy_n, np.column_stack([4.0 * self.barrier * u_n * x_n + self.coupling * y_n, 4.0
+                                          * self.switch_barrier * w_n * y_n + self.switch_tilt + self.coupling * x_n])
 
     def free_energy(self, points, *, temperature):
         """Exact F(x) (y integrated out by quadrature) at ``points`` (n, 1) nm -> (n,) kJ/mol."""
-        x_n = _points(points, 1)[:, 0]
-        return self.marginal_free_energy(0, x_n, temperature)
+        return self.marginal_free_energy(0, _points(points, 1)[:, 0], temperature)
 
     def _kernel_spec(self):
-        return _SWITCHING_DOUBLE_WELL, np.array([self.barrier, self.switch_barrier, self.switch_tilt,
-                                                 self.coupling])
+        return _dynamics.SWITCHING_DOUBLE_WELL, np.array([self.barrier, self.switch_barrier, self.switch_tilt,
+                                                          self.coupling])
 
 
 @dataclass(frozen=True)

@@ -121,11 +121,13 @@ class Crossings:
         show = format_point or (lambda p: "(" + ", ".join(f"{x:.4g}" for x in p) + ")")
         lines = ["saddle points and barriers (lowest point of the highest crossing; barrier = F(saddle) - "
                  "F(basin minimum)):"]
+        width = max(len(name) for c in self.crossings for name in c.basins) + 1
         for c in self.crossings:
             lines.append(f"  {c.basins[0]} <-> {c.basins[1]}: saddle at {show(c.saddle)}")
             for side in (0, 1):
                 value = c.barriers[side]
-                text = f"    from {c.basins[side]}: {value:8.3f} kJ/mol ({value / self.kT:6.2f} kBT)"
+                label = f"{c.basins[side]}:"
+                text = f"    from {label:<{width}} {value:8.3f} kJ/mol ({value / self.kT:6.2f} kBT)"
                 if np.isfinite(c.barrier_errors[side]):
                     text += (f"; reweighted frames {c.barriers_reweighted[side]:.3f} +/- "
                              f"{c.barrier_errors[side]:.3f} kJ/mol")

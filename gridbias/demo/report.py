@@ -157,7 +157,7 @@ def _convergence_figure(plots, differences, bias, t, cvs, names, window_fraction
 def analyse(folder, settings, info, progress):
     """Surface, basins, differences with errors, verdict, figures and the report; returns (text, files)."""
     from .. import analysis
-    from ..analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION, DEFAULT_WINDOW_FRACTION
+    from ..analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION, DEFAULT_N_POINTS, DEFAULT_WINDOW_FRACTION
     from ..exports import profile_bytes, require_plots, shown_profile, surface_bytes, write_file
     from ..runs import load_run, read_log, run_frames
     from .dipeptide import TIMESTEP
@@ -178,7 +178,7 @@ def analyse(folder, settings, info, progress):
     reference = 0 if reference is None else reference
     weights = analysis.offset_weights(bias, t, frame_bias=logged_bias,
                                       progress=progress.counter("reweighting the frames"))
-    from_bias = analysis.basin_differences_from_bias(bias, basins, n_points=40, reference=reference,
+    from_bias = analysis.basin_differences_from_bias(bias, basins, n_points=DEFAULT_N_POINTS, reference=reference,
                                                      progress=progress.counter("replaying the hills"))
     from_frames = analysis.basin_differences_from_frames(weights, t, cvs, basins, n_points=20,
                                                          reference=reference)
