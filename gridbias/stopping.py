@@ -28,7 +28,7 @@ __all__ = ["StopRule", "MaxSteps", "TimeBudget", "Converged", "ErrorBelow", "Ent
            "DEFAULT_MIN_HILLS"]
 
 #: Largest share of the run's wall-clock time that the costly rules (Converged, ErrorBelow) may spend on
-#: their checks: after a check that took c seconds, the next waits for c / fraction seconds of running.
+#: their checks (counted from the runner's start; a check is made only when it fits in the share).
 DEFAULT_MAX_COST_FRACTION = 0.01
 #: Wall-clock seconds kept in hand before a time budget ends, for the final checkpoint and for leaving
 #: cleanly (common practice for batch queues, no source).
@@ -285,32 +285,32 @@ class TimeBudget(StopRule):
 
 
 class _Costly(StopRule):
-    """A rule whose check costs time: asked again only after c / max_cost_fraction seconds of running."""
+    """A rule whose check costs time: asked only while all its checks stay within a share of the run.
+
+    A check is made when the time spent on checks so far plus the cost of the last one fits in
+    ``max_cost_fraction`` of the wall-clock time since the runner started; otherwise the rule waits (it
+    never shortens the runner's stretches, which would cost more than the checks). Only a check far
+    dearer than the one before it (the first full verdict) can push the total above the share.
+    """
 
     def __init__(self, max_cost_fraction):
         frac = max_cost_fraction
         if isinstance(frac, bool) or not isinstance(frac, (int, float)) or not 0 < frac <= 1:
             raise ParameterError(f"max_cost_fraction must be in (0, 1], got {max_cost_fraction!r}")
         self.max_cost_fraction = float(frac)
-        self.next_step = 0
         self.cost_seconds = 0.0
         self.n_checks = 0
+        self._last_cost = 0.0
 
     def evaluate(self, progress):
-        if progress.step < self.next_step:
+        if self.cost_seconds + self._last_cost > self.max_cost_fraction * progress.elapsed:
             return None
         started = _time.perf_counter()
         reason = self._holds(progress)
-        took = _time.perf_counter() - started
-        self.cost_seconds += took
+        self._last_cost = _time.perf_counter() - started
+        self.cost_seconds += self._last_cost
         self.n_checks += 1
-        if math.isfinite(progress.seconds_per_step) and progress.seconds_per_step > 0:
-            self.next_step = progress.step + max(1, math.ceil(took / self.max_cost_fraction
-                                                              / progress.seconds_per_step))
         return reason
-
-    def steps_left(self, progress):
-        return max(self.next_step - progress.step, 1) if self.next_step > progress.step else None
 
 
 class Converged(_Costly):

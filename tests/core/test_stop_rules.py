@@ -13,7 +13,7 @@ import pytest
 
 import gridbias as gb
 from gridbias import stopping
-from gridbias.analysis import basins_from_boxes
+from gridbias.analysis import assess_convergence, basins_from_boxes
 from gridbias.checkpoint import read_checkpoint
 from gridbias.core_run import CHECKPOINT_KIND, StoppingRun
 from gridbias.errors import ParameterError
@@ -106,16 +106,20 @@ def test_enters_basin_stops_at_the_first_entry(tmp_path):
 
 
 def test_converged_stops_a_well_tempered_run_and_records_the_verdict(tmp_path):
-    # this toy MD is so cheap that the default 1 % cost share would look only every ~10^6 steps
-    rule = stopping.Converged(basins=BOXES, max_cost_fraction=0.5)
-    run, bias, _ = simulate(tmp_path / "run.gbz", rule | stopping.MaxSteps(1_000_000))
+    # this toy MD is so cheap that the default 1 % share of the run would allow hardly any check: allow 10 %,
+    # with numba's kernels of the analysis loaded beforehand (the first call of a process loads them)
+    warm = new_bias()
+    warm.deposit([-1.0], time=1.0)
+    assess_convergence(warm, BOXES)
+    rule = stopping.Converged(basins=BOXES, max_cost_fraction=0.1)
+    run, bias, _ = simulate(tmp_path / "run.gbz", rule | stopping.MaxSteps(3_000_000))
     assert run.decision.rule == "Converged()", run.decision
     assert rule.last_verdict.converged and len(rule.last_verdict.criteria) == 4  # with the cross-check
     assert rule.n_checks >= 2 and rule.cost_seconds > 0
 
 
 def test_error_below_stops_when_the_named_difference_is_precise_enough(tmp_path):
-    rule = stopping.ErrorBelow(BOXES, "R", "L", 1.0, max_cost_fraction=0.5)
+    rule = stopping.ErrorBelow(BOXES, "R", "L", 1.0, max_cost_fraction=1.0)
     run, _, _ = simulate(tmp_path / "run.gbz", rule | stopping.MaxSteps(1_000_000))
     assert run.decision.rule == "ErrorBelow(R - L <= 1 kJ/mol)", run.decision
     assert 0 < rule.last_error <= 1.0 and "+/-" in run.decision.reason
