@@ -165,7 +165,7 @@ def make_bias(cvs, *, lower, upper, bins, sigma, height, temperature, bias_facto
 
             power = float(spec.get("power", 2.0))
             per = getattr(unit, unit_name) ** power if unit_name != "dimensionless" else unit.dimensionless
-            spec["k"] = float(spec["k"].value_in_unit(unit.kilojoule_per_mole / per))
+            spec["k"] = in_md_units(spec["k"], name="wall k", unit=unit.kilojoule_per_mole / per)
         converted.append(Wall(**spec))
     return GridBias(grid, per_cv("sigma", sigma, cvs),
                     in_md_units(height, name="height", unit="kilojoule_per_mole"),
