@@ -38,17 +38,12 @@ DEFAULT_MIN_HILLS = 100
 
 
 def _in_unit(name, value, unit_name, allowed):
-    """A float from a number or an ``openmm.unit`` quantity (converted to ``unit_name``)."""
-    if hasattr(value, "value_in_unit_system"):
-        from .openmm._units import in_md_units
+    """A float > 0 from a number or an ``openmm.unit`` quantity (converted to ``unit_name``)."""
+    from .openmm._units import in_md_units
 
-        value = in_md_units(value, name=name, unit=unit_name)
     if isinstance(value, bool):
         raise ParameterError(f"{name} must be {allowed}, got {value!r}")
-    try:
-        x = float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} must be {allowed}, got {value!r}") from None
+    x = in_md_units(value, name=name, unit=unit_name)
     if not (math.isfinite(x) and x > 0):
         raise ParameterError(f"{name} must be {allowed}, got {value!r}")
     return x
