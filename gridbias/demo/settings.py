@@ -27,7 +27,8 @@ The run parameters and why (the molecule is described in :mod:`gridbias.demo.dip
   crossed hundreds of times, while regions far above the barriers are not filled for nothing.
 - Grid: 96 bins per period (3.75 deg), a third of the hill width or finer (common practice).
 - Length: without a length, the run stops when the convergence verdict holds (checked at a cadence that
-  costs under 1% of the run), at most after 20 ns; with ``length_ns`` it runs exactly that long, 2 ns with
+  costs under 10% of this tiny molecule's fast run, see ``simulation.DEMO_CHECK_FRACTION``), at most after
+  20 ns; with ``length_ns`` it runs exactly that long, 2 ns with
   ``quick`` (speed and run time: bench/README.md, "Figures quoted in the code"). A 10 ns run passes the
   convergence criteria with margin (hill heights near 3% of the initial against the 5% threshold, basin
   differences drifting by about 0.25 kBT against 0.5); the quick run usually does not, and its report
