@@ -349,8 +349,10 @@ class Converged(_Costly):
                   "min_transitions": lambda n, v: as_count(n, v, 1)}
         for name, value in thresholds.items():  # refused now, not at the first check hours later
             checks.get(name, as_positive)(name, value)
+        if basins is not None and not hasattr(basins, "assign"):
+            raise ParameterError(f"basins must be Basins or None (found on the surface), got {basins!r}")
         self.basins = basins
-        self.min_depth_kT = min_depth_kT
+        self.min_depth_kT = as_positive("min_depth_kT", min_depth_kT)
         self.min_hills = _count("min_hills", min_hills, 1)
         self.thresholds = thresholds
         self.last_verdict = None
