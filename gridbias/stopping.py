@@ -339,6 +339,7 @@ class Converged(_Costly):
     def __init__(self, *, basins=None, min_depth_kT: float = 2.0, min_hills: int = DEFAULT_MIN_HILLS,
                  max_cost_fraction: float = DEFAULT_MAX_COST_FRACTION, **thresholds):
         super().__init__(max_cost_fraction)
+        from .analysis import Basins
         from .analysis._checks import as_count, as_fraction, as_positive
 
         unknown = sorted(set(thresholds) - set(self._THRESHOLDS))
@@ -349,7 +350,7 @@ class Converged(_Costly):
                   "min_transitions": lambda n, v: as_count(n, v, 1)}
         for name, value in thresholds.items():  # refused now, not at the first check hours later
             checks.get(name, as_positive)(name, value)
-        if basins is not None and not hasattr(basins, "assign"):
+        if basins is not None and not isinstance(basins, Basins):
             raise ParameterError(f"basins must be Basins or None (found on the surface), got {basins!r}")
         self.basins = basins
         self.min_depth_kT = as_positive("min_depth_kT", min_depth_kT)
