@@ -353,7 +353,7 @@ class Converged(_Costly):
         if basins is not None and not isinstance(basins, Basins):
             raise ParameterError(f"basins must be Basins or None (found on the surface), got {basins!r}")
         self.basins = basins
-        self.min_depth_kT = as_positive("min_depth_kT", min_depth_kT)
+        self.min_depth_kT = as_positive("min_depth_kT", min_depth_kT, "kBT")
         self.min_hills = _count("min_hills", min_hills, 1)
         self.thresholds = thresholds
         self.last_verdict = None
