@@ -3,7 +3,8 @@
 Subcommands:
 
 - ``demo``: well-tempered metadynamics of a dipeptide in vacuum, with a report (gridbias.demo.run).
-- ``inspect``: summarise a checkpoint: grid, CVs, hills, simulated time, height decay, basins, verdict.
+- ``inspect``: summarise a checkpoint: grid, CVs, hills, simulated time, height decay, basins, saddle
+  points and barriers, verdict.
 - ``export``: write the free-energy surface of a checkpoint as CSV, NumPy .npz, PNG, SVG or PDF.
 - ``reweight``: the free energy along chosen columns of a CV log, reweighted to the unbiased ensemble.
 
@@ -191,6 +192,7 @@ def _cmd_inspect(args) -> int:
     if basins.n_basins > 1:
         add("")
         add(differences.table())
+    weights = None
     if frames is not None and basins.n_basins > 1:
         t, cvs, logged_bias = frames
         kwargs = {"frame_bias": logged_bias} if logged_bias is not None else {"frame_cvs": cvs}
@@ -203,9 +205,16 @@ def _cmd_inspect(args) -> int:
     elif basins.n_basins > 1:
         add("  (no error bars from the bias alone: add --log with the run's CV log for reweighted "
             "differences with block-analysis errors)")
+    if basins.n_basins > 1:
+        with_frames = {} if weights is None else {"weights": weights, "frame_cvs": frames[1]}
+        crossings = analysis.find_crossings(grid, surface.free_energy, bias.kT, basins, names=run.names,
+                                            **with_frames)
+        add("")
+        add(crossings.table(format_point=lambda p: "(" + ", ".join(
+            f"{run.names[i]} {show.value(i, p[i])}{show.suffix(i)}" for i in range(bias.ndim)) + ")"))
     verdict = analysis.assess_convergence(
         bias, basins, frame_times=None if frames is None else frames[0],
-        frame_cvs=None if frames is None else frames[1], differences=differences,
+        frame_cvs=None if frames is None else frames[1], weights=weights, differences=differences,
         window_fraction=args.window, tolerance_kT=args.drift, min_transitions=args.transitions,
         max_height_fraction=args.max_height)
     add("")
@@ -491,9 +500,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-height", type=_fraction, default=0.05, metavar="FRACTION",
                    help="well-tempered: recent hills must be at most this fraction of the initial height "
                         "(default 0.05)")
-    p.add_argument("--points", type=_count_upto(MAX_POINTS, "each one is a replay of the hills"), default=40,
+    p.add_argument("--points", type=_count_upto(MAX_POINTS, "each one is a replay of the hills"), default=100,
                    metavar="N",
-                   help="moments of the run at which the basin differences are computed (default 40)")
+                   help="moments of the run at which the basin differences are computed (default 100)")
     p.set_defaults(handler=_cmd_inspect)
 
     p = sub.add_parser(

@@ -104,14 +104,14 @@ def _plot_names(names, units, periodic):
     return tuple(f"{n} ({u})" if u and not p else n for n, u, p in zip(names, units, periodic, strict=True))
 
 
-def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) -> bytes:
+def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None, crossings=None) -> bytes:
     """A free-energy surface (analysis.Surface) as the bytes of a .csv, .npz or figure file.
 
     CSV: one row per grid node, the CV columns (angles in ``angle_unit``) then ``free_energy[kJ/mol]``.
     NPZ: ``free_energy`` (grid shape, kJ/mol), ``axis0..`` node coordinates in CV units, ``names``,
     ``units``, ``periodic``, ``lower``, ``upper``, ``kT``, ``bias_factor`` (NaN: standard), ``time_ps``,
     ``n_hills``. Figures (png, svg, pdf): filled contours (2 CVs) or a curve (1 CV) by gridbias.plots,
-    with ``basins`` marked if given.
+    with ``basins`` marked if given, and ``crossings`` (saddle points, minimum free-energy paths).
     """
     grid = surface.grid
     show = CVDisplay(names, units, angle_unit)
@@ -131,8 +131,8 @@ def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) 
                       time_ps=np.float64(surface.time), n_hills=np.int64(surface.n_hills))
         return _npz_bytes(arrays)
     plots = require_plots()
-    figure = plots.plot_free_energy(surface, basins=basins, names=_plot_names(names, units, grid.periodic),
-                                    angle_unit=angle_unit)
+    figure = plots.plot_free_energy(surface, basins=basins, crossings=crossings,
+                                    names=_plot_names(names, units, grid.periodic), angle_unit=angle_unit)
     return figure_bytes(figure, fmt)
 
 

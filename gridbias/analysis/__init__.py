@@ -12,9 +12,12 @@ Modules, one job each:
 - ``blocking``: block analysis of a correlated series.
 - ``basins``: basins from boxes or from the surface's minima; transitions between their cores.
 - ``differences``: basin free-energy differences against simulated time.
-- ``convergence``: the convergence verdict.
+- ``convergence``: the convergence verdict (drift against its noise, transitions, heights, estimator
+  cross-check).
+- ``barriers``: saddle points, barriers and minimum free-energy paths between adjacent basins.
 """
 
+from .barriers import Crossing, Crossings, find_crossings
 from .basins import (
     Basins,
     Transitions,
@@ -27,6 +30,7 @@ from .blocking import BlockingCurve, blocking_curve
 from .convergence import (
     ConvergenceVerdict,
     Criterion,
+    agreement_criterion,
     assess_convergence,
     drift_criterion,
     height_criterion,
@@ -61,5 +65,6 @@ __all__ = [
     "Basins", "Transitions", "basins_from_boxes", "find_basins", "basin_free_energies", "count_transitions",
     "BasinDifferences", "basin_differences_from_bias", "basin_differences_from_frames",
     "Criterion", "ConvergenceVerdict", "drift_criterion", "transition_criterion", "height_criterion",
-    "assess_convergence",
+    "agreement_criterion", "assess_convergence",
+    "Crossing", "Crossings", "find_crossings",
 ]

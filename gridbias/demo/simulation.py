@@ -122,7 +122,8 @@ def _status_line(settings, step, bias, started_step, started, mode_name):
     from ..progress import format_duration
 
     speed = f"{rate * TIMESTEP * 86400 / 1000:,.0f} ns/day" if math.isfinite(rate) else "-"
-    return (f"{mode_name}: {ns:6.3f} / {total_ns:g} ns | {bias.n_hills:,} hills | height {height} | "
+    total = f"until converged, at most {total_ns:g}" if settings.until_converged else f"{total_ns:g}"
+    return (f"{mode_name}: {ns:6.3f} / {total} ns | {bias.n_hills:,} hills | height {height} | "
             f"{speed} | ETA {format_duration(eta)}")
 
 
@@ -139,6 +140,11 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
         say(stream, f"the run in {folder} already reached {previous.time / 1000:g} ns (asked: "
                      f"{settings.length_ns:g} ns); analysing it again")
         return True, previous.step, {"platform": previous.platform, "steps_per_second": math.nan}
+    recorded = _recorded_decision(checkpoint, settings) if previous is not None else None
+    if recorded is not None:
+        say(stream, f"the run in {folder} has already stopped ({recorded}); analysing it again")
+        return True, previous.step, {"platform": previous.platform, "steps_per_second": math.nan,
+                                     "decision": str(recorded)}
     if previous is None and os.path.exists(frames):
         os.unlink(frames)  # frames of a run that never reached its first checkpoint
 
@@ -189,23 +195,81 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
             frame_log.close()
 
 
+#: Share of the demo's wall-clock time its convergence checks may take. A check replays the hills and
+#: reweights every frame (about 2.5 s at 5 ns here), while this tiny molecule runs 5 ns in a minute: at the
+#: library's default 1 % the demo would look about twice per run and stop long after the verdict holds.
+DEMO_CHECK_FRACTION = 0.1
+
+
+def _rules(settings):
+    """The demo's stop rules: its length, and with ``until_converged`` the convergence verdict."""
+    from ..stopping import Converged, MaxSteps
+
+    rules = MaxSteps(settings.n_steps)
+    return Converged(max_cost_fraction=DEMO_CHECK_FRACTION) | rules if settings.until_converged else rules
+
+
+def _recorded_decision(checkpoint, settings):
+    """The stop decision in the checkpoint if it still ends the run under these settings, else None."""
+    from ..runs import read_run_checkpoint
+    from ..stopping import Referee, StopDecision
+
+    saved = read_run_checkpoint(checkpoint)
+    decision = None if saved.stop is None else StopDecision.from_dict(saved.stop)
+    return decision if Referee(_rules(settings), None).confirms(decision) else None
+
+
+def _frames(path, labels, writer_owner):
+    """A callable reading (times, cvs, bias) of every frame in the demo's CV log, for the stop rules."""
+
+    def load():
+        from ..cvlog import read_cvlog
+
+        if writer_owner._writer is not None:
+            writer_owner._writer.flush()
+        if not os.path.exists(path):
+            return None
+        frames = read_cvlog(path)
+        if frames.n_records == 0:
+            return None
+        cvs = np.column_stack([frames.column(c) for c in labels])
+        return frames.column("time"), cvs, frames.column("bias")
+
+    return load
+
+
 def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream, progress, platform):
-    """Step in chunks until the target step or a stop request; write the checkpoint at the end."""
+    """Step in chunks until a stop rule holds or a stop is requested; write the checkpoint at the end."""
+    from ..openmm._units import in_md_units
+    from ..stopping import Progress, Referee
+
     mode_name = SUBFOLDERS[settings.mode]
     chunk = settings.stride * 20
     started_step = simulation.currentStep
     started = time.monotonic()
+    referee = Referee(_rules(settings), link.bias)
+    frames_path = os.path.join(os.path.dirname(checkpoint), FRAMES)
+    log = reporter if frame_log is None else frame_log
+    decision = None
+
+    def look(loader=None):
+        step = simulation.currentStep
+        now = float(in_md_units(simulation.context.getState().getTime()))
+        return Progress(step, now, link.bias, referee.elapsed(), referee.seconds_per_step(step), loader)
+
     with _StopRequest() as stop:
-        while simulation.currentStep < settings.n_steps and not stop.asked:
-            simulation.step(min(chunk, settings.n_steps - simulation.currentStep))
+        while decision is None and not stop.asked:
+            simulation.step(referee.stretch(look(), chunk))
+            decision = referee.decide(look(_frames(frames_path, link.labels(), log)))
+            referee.restart_clock(simulation.currentStep)
             progress.update(_status_line(settings, simulation.currentStep, link.bias, started_step, started,
                                          mode_name))
         line = _status_line(settings, simulation.currentStep, link.bias, started_step, started, mode_name)
         # The frames logged so far reach the disk before the checkpoint that matches them (as the
         # adapter's reporter does before each of its checkpoints); the reporter keeps the checkpoint
         # locked until the final one is written.
-        fsync_path(os.path.join(os.path.dirname(checkpoint), FRAMES))
-        link.save(simulation, checkpoint)
+        fsync_path(frames_path)
+        link.save(simulation, checkpoint, stop=None if decision is None else decision.to_dict())
         reporter.close()
         if frame_log is not None:
             frame_log.close()
@@ -213,7 +277,7 @@ def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream
     elapsed = time.monotonic() - started
     done = simulation.currentStep - started_step
     info = {"platform": platform, "steps_per_second": done / elapsed if elapsed > 0 else math.nan,
-            "wall_seconds": elapsed}
+            "wall_seconds": elapsed, "decision": None if decision is None else str(decision)}
     if stop.asked:
         say(stream, f"stopped at step {simulation.currentStep:,}; the checkpoint {checkpoint} is written. "
                      "Run the same command again to continue.")

@@ -62,6 +62,7 @@ class BiasLink:
         self._reporters = weakref.WeakSet()
         self._plan = (None, False)  # (platform the route was chosen for, chosen automatically); set by attach
         self._blown_up_at = None  # step at which the run was declared blown up (cleared by restore)
+        self.restored_stop = None  # the stop decision of the last checkpoint restored (dict), if any
 
     # -- properties -------------------------------------------------------------------------------
     bias = property(lambda self: self._bias, doc="The GridBias being applied (restore loads into it).")
@@ -181,13 +182,14 @@ class BiasLink:
         self._reporters.add(rep)
         return rep
 
-    def save(self, simulation, path) -> None:
+    def save(self, simulation, path, *, stop: dict | None = None) -> None:
         """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state.
 
         The file (a run checkpoint, layout in :mod:`gridbias.runs`) is replaced atomically. Nothing is
         written (BlownUpError, the last good file stays) when positions or velocities are not finite or
         beyond ``MAX_COORDINATE`` / ``MAX_SPEED``, nor after the run was declared blown up (until a good
-        checkpoint is restored).
+        checkpoint is restored). ``stop`` records a stop decision (``StopDecision.to_dict()``; see
+        :meth:`run_until`).
         """
         openmm = require_openmm()
         context = _context_of(simulation)
@@ -215,7 +217,24 @@ class BiasLink:
             md_checkpoint=context.createCheckpoint(),
             positions=positions, velocities=velocities,
             box=np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float),
-            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z")))
+            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z"), stop=stop))
+
+    def run_until(self, simulation, rules, *, stretch: int | None = None):
+        """Run until a stop rule holds, write a final checkpoint with the decision, and return it.
+
+        Needs this link's reporter (with ``checkpoint=``, and ``log=`` for rules that read frames) in
+        ``simulation.reporters``. If the checkpoint exists and the run has not been restored yet, it is
+        restored first; when it records a decision that still holds under ``rules`` (see
+        ``gridbias.stopping.Referee.confirms``), nothing more is run. With walkers (a shared bias), every
+        walker calls it and all stop together. See :func:`gridbias.openmm.until.run_until`.
+
+        Returns
+        -------
+        gridbias.stopping.StopDecision
+        """
+        from .until import run_until
+
+        return run_until(self, simulation, rules, stretch=stretch)
 
     def restore(self, simulation, path) -> RunCheckpoint:
         """Continue from a checkpoint: restores the bias, the MD state and the engine's bias exactly.
@@ -242,6 +261,7 @@ class BiasLink:
         except CheckpointError as exc:
             raise CheckpointError(f"run checkpoint {os.fspath(path)!r}: {exc}") from exc
         folded, n_folded = checkpoint.folded_values, checkpoint.engine["n_folded"]
+        self.restored_stop = checkpoint.stop
         diff = self._bias.describe_difference(bias)
         if diff:
             raise CheckpointError(f"{path}: the bias {diff} (this run vs checkpoint)")

@@ -47,7 +47,7 @@ def test_readme_analysis_on_a_bias_checkpoint(tmp_path, monkeypatch):
     assert Path("surface.png").stat().st_size > 0
     assert namespace["surface"].free_energy.shape == grid.shape
     verdict = namespace["verdict"]
-    assert len(verdict.criteria) == 3  # drift, transitions, height decay (well-tempered)
+    assert len(verdict.criteria) == 4  # drift, transitions, height decay (well-tempered), cross-check
     # 600 hills of a short run: the height criterion cannot hold yet, so the verdict must not say converged.
     assert not verdict.converged
 

@@ -88,7 +88,7 @@ LAYERS = {
     "files": ["errors", "_files", "checkpoint", "cvlog"],
     "core": ["gridbias", "grid", "walls", "history", "_kernels", "bias", "walkers", "testsystems", "_dynamics",
              "_identity", "_consistency", "_bias_state"],
-    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm"],
+    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm", "stopping", "core_run"],
     "application": ["demo"],
     "entry point": ["cli", "__main__"],
 }
