@@ -1,6 +1,6 @@
 """Metadynamics parameters from a short unbiased run: measure each CV, propose a parameter set, explain it.
 
-Give :func:`advise` the CV time series of a short unbiased run (or :func:`advise_from_log` a CV log);
+Give :func:`advise` the CV time series of a short unbiased run (or :func:`advise_from_file` a file);
 it measures per CV the fluctuation, the range visited, the integrated autocorrelation time with its error
 and the basins seen, and proposes hill width, grid, stride, initial height, bias factor and walls, each
 with its reason, plus warnings where the data cannot support a choice and what the time you can afford
@@ -33,6 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ._modes import basin_labels, longest_stretch
 from .analysis.autocorrelation import MIN_RUN_LENGTH, autocorrelation_time
 from .analysis.blocking import blocking_curve
 from .analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION
@@ -41,7 +42,7 @@ from .errors import ParameterError
 from .grid import MAX_DIMENSIONS, Grid
 from .walls import Wall
 
-__all__ = ["CVStatistics", "Advice", "advise", "advise_from_log", "MIN_FRAMES", "SIGMA_FRACTION",
+__all__ = ["CVStatistics", "Advice", "advise", "advise_from_file", "MIN_FRAMES", "SIGMA_FRACTION",
            "SPACING_FRACTION", "STRIDE_TIMES", "HEIGHT_KT", "BIASED_BARRIER_KT", "DEFAULT_BIAS_FACTOR",
            "WALL_MARGIN_SIGMAS", "WALL_RISE_GAMMA_KT", "PLANNING_FACTOR"]
 
@@ -61,9 +62,6 @@ BARELY_MOVED = 1.0 / 500.0    # fluctuation below this fraction of the axis span
 #: 10 and 14 kBT; tests/core/test_advice_double_well.py). Measured there, not a general law.
 PLANNING_FACTOR = 4.0
 MAX_NODES = 4_000_000         # above this the grid is flagged (memory and engine table pushes)
-_HIST_BINS = 64               # bins of the histogram that finds the basins of the short run
-_MIN_BASIN_FRACTION = 0.02    # a mode holding fewer frames is not counted as a basin
-_DIP = math.exp(-1.0)         # modes separated by a density dip below this fraction (1 kBT) are two basins
 
 
 @dataclass(frozen=True)
@@ -246,84 +244,6 @@ def _wrap(x, period):
     return x - period * np.round(x / period)
 
 
-def _basin_labels(x, period):
-    """(per-frame basin label, number of basins) from the modes of the smoothed histogram of ``x``."""
-    circular = period is not None
-    if circular:
-        edges = np.linspace(-period / 2, period / 2, _HIST_BINS + 1)
-        values = _wrap(x, period)
-    else:
-        edges = np.linspace(x.min(), x.max(), _HIST_BINS + 1)
-        values = x
-    counts = np.histogram(values, edges)[0].astype(float)
-    kernel = np.exp(-0.5 * (np.arange(-4, 5) / 1.5) ** 2)
-    pad = (counts[-4:], counts[:4]) if circular else (np.zeros(4), np.zeros(4))
-    p = np.convolve(np.concatenate([pad[0], counts, pad[1]]), kernel / kernel.sum(), mode="valid")
-    m = p.size
-    nxt, prv = np.roll(p, -1), np.roll(p, 1)
-    if not circular:
-        nxt[-1], prv[0] = -1.0, -1.0
-    peaks = [i for i in range(m) if p[i] > prv[i] and p[i] >= nxt[i]]
-    while len(peaks) > 1:
-        cuts = _cuts(p, peaks, circular)
-        # Two modes are one basin when the density between them stays above _DIP of the lower peak
-        # (on a circle with two modes, the higher of the two dips decides).
-        tops = [min(p[peaks[k]], p[peaks[(k + 1) % len(peaks)]]) for k in range(len(peaks))]
-        shallow = [k for k in range(len(peaks) - (0 if circular else 1))
-                   if _path_dip(p, cuts, k, circular) > _DIP * tops[k]]
-        if shallow:
-            k = shallow[0]
-            a, b = peaks[k], peaks[(k + 1) % len(peaks)]
-            peaks.remove(a if p[a] < p[b] else b)
-            continue
-        mass = np.bincount(_label_bins(m, cuts, circular), weights=p, minlength=len(peaks))
-        small = int(np.argmin(mass))
-        if mass[small] >= _MIN_BASIN_FRACTION * p.sum():
-            break
-        peaks.pop(small)
-    if len(peaks) == 1:
-        return np.zeros(x.size, dtype=np.int64), 1
-    bin_of = np.clip(np.searchsorted(edges, values, side="right") - 1, 0, _HIST_BINS - 1)
-    return _label_bins(m, _cuts(p, peaks, circular), circular)[bin_of], len(peaks)
-
-
-def _cuts(p, peaks, circular):
-    """Bin of lowest density between each peak and the next (on a circle also between the last and first)."""
-    m = p.size
-    cuts = []
-    for k in range(len(peaks) if circular else len(peaks) - 1):
-        a, b = peaks[k], peaks[(k + 1) % len(peaks)]
-        idx = np.arange(a + 1, b + (m if b <= a else 0)) % m
-        cuts.append(int(idx[np.argmin(p[idx])]))
-    return cuts
-
-
-def _path_dip(p, cuts, k, circular):
-    """Density at the dip a path must cross between peak k and peak k + 1."""
-    if circular and len(cuts) == 2:
-        return max(p[cuts[0]], p[cuts[1]])
-    return p[cuts[k]]
-
-
-def _label_bins(m, cuts, circular):
-    """Basin of each histogram bin (0..k-1, in the order of the peaks) given the cuts between them."""
-    j = np.arange(m)
-    if not circular:
-        return np.searchsorted(np.array(cuts), j, side="left")
-    shift = cuts[-1] + 1
-    rotated = (np.array(cuts[:-1], dtype=np.int64) - shift) % m
-    return np.searchsorted(rotated, (j - shift) % m, side="left")
-
-
-def _longest_stretch(mask):
-    """(start, stop) of the longest run of True in mask."""
-    padded = np.concatenate([[False], mask, [False]]).astype(np.int8)
-    change = np.flatnonzero(np.diff(padded))
-    starts, stops = change[0::2], change[1::2]
-    k = int(np.argmax(stops - starts))
-    return int(starts[k]), int(stops[k])
-
-
 def _measure(x, *, name, unit, period, interval, warnings):
     n = x.size
     if period is not None:
@@ -337,11 +257,11 @@ def _measure(x, *, name, unit, period, interval, warnings):
     if not np.ptp(spread) > 1e-12 * max(1.0, float(np.abs(x).max())):
         raise ParameterError(f"CV {name!r} is constant ({x[0]!r} in all {n} frames): it cannot be "
                              "measured; check the CV definition (atoms, constraints) or the column chosen")
-    labels, n_basins = _basin_labels(x, period)
+    labels, n_basins = basin_labels(x, period)
     on = "all frames"
     start, stop = 0, n
     if n_basins > 1:
-        start, stop = _longest_stretch(labels == labels[0])
+        start, stop = longest_stretch(labels == labels[0])
         on = f"starting basin, frames {start}..{stop - 1}"
         warnings.append(
             f"{name}: the short run hopped between {n_basins} basins, so its barrier is at most a few kBT at "
@@ -608,59 +528,50 @@ def _propose(stats, ranges, *, temperature, timestep, interval, barrier, afforda
                   tuple(reasons), tuple(warnings), tuple(implications))
 
 
-def advise_from_log(path, *, temperature=None, columns=None, **options) -> Advice:
-    """:func:`advise` on a CV log (``.gbl``) of an unbiased run.
+def advise_from_file(path, *, columns=None, temperature=None, interval=None, periods=None,
+                     **options) -> Advice:
+    """:func:`advise` on the CVs of an unbiased run stored in a file.
 
     Parameters
     ----------
     path : str or os.PathLike
-        A CV log with columns ``step, time, <CVs>[, bias]`` (as written by the OpenMM adapter).
-    temperature : float, K, keyword-only, optional
-        Default: the temperature in the log's metadata.
+        A CV log (``.gbl``, as written by the OpenMM adapter), a CSV file with one header line of column
+        names (``name`` or ``name[unit]``; a ``time`` column in ps gives the interval; ``[deg]`` columns are
+        converted to rad) or a NumPy ``.npy`` array (n, d) of CV values.
     columns : sequence of str, keyword-only, optional
         The CV columns; default every column but ``step``, ``time`` and ``bias``.
+    temperature : float, K, keyword-only
+        Default: the temperature recorded in a CV log.
+    interval : float, ps, keyword-only
+        Time between frames; default from the ``time`` column (required for ``.npy``).
+    periods : sequence of float or None, keyword-only, optional
+        Default: 2 pi for the dihedral CVs recorded in a CV log, else not periodic.
     **options
-        Passed to :func:`advise` (``barrier``, ``cv_range``, ``affordable_time``, ``timestep``, ``periods``).
-        The frame interval and the time step come from the ``time`` and ``step`` columns, the periods
-        from the CV definitions in the metadata, unless given.
+        Passed to :func:`advise` (``barrier``, ``cv_range``, ``affordable_time``, ``timestep``); the time
+        step comes from a CV log's ``step`` and ``time`` columns unless given.
 
     Returns
     -------
     Advice
-    """
-    from .cvlog import read_cvlog
-    from .errors import CVLogError
 
-    log = read_cvlog(path)
-    if "time" not in log.columns:
-        raise CVLogError(f"CV log {log.path!r} has no 'time' column; its columns: {list(log.columns)}")
-    logged = [c for c in log.columns if c not in ("step", "time", "bias")]
-    chosen = logged if columns is None else list(columns)
-    for c in chosen:
-        if c not in log.columns:
-            raise CVLogError(f"CV log {log.path!r} has no column {c!r}; its columns: {list(log.columns)}")
-    if log.n_records < 2:
-        raise ParameterError(f"the run is too short: CV log {log.path!r} holds {log.n_records} records, at "
-                             f"least {MIN_FRAMES} are needed")
-    times = log.column("time")
-    steps = np.diff(times)
-    if not (np.all(steps > 0) and np.allclose(steps, steps[0], rtol=1e-6, atol=1e-9)):
-        raise ParameterError(f"CV log {log.path!r}: the time column is not evenly spaced and increasing; "
-                             "the autocorrelation time needs equally spaced frames")
-    options.setdefault("interval", float(times[-1] - times[0]) / (times.size - 1))
-    if "step" in log.columns and "timestep" not in options:
-        step_col = log.column("step")
-        if step_col[-1] > step_col[0]:
-            options["timestep"] = float(times[-1] - times[0]) / float(step_col[-1] - step_col[0])
+    Raises
+    ------
+    ParameterError or CVLogError
+        A missing or unreadable file, an unknown column, frames not evenly spaced, or what :func:`advise`
+        refuses.
+    """
+    from ._series_files import read_series
+
+    found = read_series(path, columns=columns)
+    if interval is None:
+        if found.interval is None:
+            raise ParameterError(f"{found.path!r} has no time column: give the frame interval (ps)")
+        interval = found.interval
     if temperature is None:
-        temperature = log.metadata.get("temperature")
-        if temperature is None:
-            raise ParameterError(f"CV log {log.path!r} records no temperature: give temperature= (K)")
-    if "periods" not in options:
-        cvs = log.metadata.get("cvs") or []
-        by_label = dict(zip(logged, cvs, strict=False))
-        options["periods"] = [2 * math.pi if isinstance(by_label.get(c), dict) and by_label[c].get("kind") ==
-                              "dihedral" else None for c in chosen]
-    data = np.column_stack([log.column(c) for c in chosen])
-    units = [log.unit(c) for c in chosen]
-    return advise(data, temperature=temperature, names=chosen, units=units, **options)
+        if found.temperature is None:
+            raise ParameterError(f"{found.path!r} records no temperature: give the temperature (K)")
+        temperature = found.temperature
+    if found.timestep is not None:
+        options.setdefault("timestep", found.timestep)
+    return advise(found.data, interval=interval, temperature=temperature, names=found.names,
+                  units=found.units, periods=found.periods if periods is None else periods, **options)
