@@ -56,11 +56,13 @@ BIASED_BARRIER_KT = 2.0       # barrier left under the bias, dF / gamma, kBT (co
 DEFAULT_BIAS_FACTOR = 10.0    # without a barrier (common practice: 5-15 for conformational changes)
 WALL_MARGIN_SIGMAS = 3.0      # walls this many hill widths inside the grid edges (common practice)
 WALL_RISE_GAMMA_KT = 10.0     # wall energy at the grid edge, gamma kBT (rule of this package, no source)
-BARELY_MOVED = 1.0 / 500.0    # fluctuation below this fraction of the axis span: "barely moved"
+BARELY_MOVED = 1.0 / 500.0    # fluctuation below this fraction of the range of interest: "barely moved"
 #: Planned run length / time for the hills to fall to 5 %: on the analytic double well the convergence
 #: verdict (drift and transitions included) first passed 1.25-3.25 times after that time (6 runs, barriers of
 #: 10 and 14 kBT; tests/core/test_advice_double_well.py). Measured there, not a general law.
 PLANNING_FACTOR = 4.0
+#: The line of the pasted code where the user's Simulation is created (after ``attach``).
+SIMULATION_LINE = "# ... create the Simulation here, after attach (attach adds forces to the System) ..."
 MAX_NODES = 4_000_000         # above this the grid is flagged (memory and engine table pushes)
 
 
@@ -192,7 +194,8 @@ class Advice:
                  f"                     height={self.height!r}, temperature={self.temperature!r}, "
                  f"bias_factor={self.bias_factor!r},",
                  f"                     walls=[{walls}])",
-                 "link = gbo.attach(system, cvs, bias)   # before the Simulation is created"]
+                 "link = gbo.attach(system, cvs, bias)",
+                 SIMULATION_LINE]
         if self.stride is not None:
             lines.append(f"simulation.reporters.append(link.reporter(stride={self.stride}, "
                          f"checkpoint=\"run.gbz\", checkpoint_every={self.checkpoint_every}, "
@@ -239,6 +242,11 @@ def _round(value: float, digits: int = 4) -> float:
     return float(f"{value:.{digits}g}")
 
 
+def _round_near(value: float, scale: float) -> float:
+    """``value`` rounded to the decimal place of about ``scale`` / 100 (a bound next to a hill width)."""
+    return round(value, max(0, 2 - math.floor(math.log10(scale))))
+
+
 # ------------------------------------------------------------------------------------------ measuring
 def _wrap(x, period):
     return x - period * np.round(x / period)
@@ -250,10 +258,8 @@ def _measure(x, *, name, unit, period, interval, warnings):
         angle = 2 * np.pi * x / period
         centre = period / (2 * np.pi) * math.atan2(np.sin(angle).mean(), np.cos(angle).mean())
         spread = _wrap(x - centre, period)
-        span = period
     else:
         centre, spread = 0.0, x
-        span = float(x.max() - x.min())
     if not np.ptp(spread) > 1e-12 * max(1.0, float(np.abs(x).max())):
         raise ParameterError(f"CV {name!r} is constant ({x[0]!r} in all {n} frames): it cannot be "
                              "measured; check the CV definition (atoms, constraints) or the column chosen")
@@ -294,11 +300,6 @@ def _measure(x, *, name, unit, period, interval, warnings):
             f"{name}: the CV decorrelates within one sampling interval ({interval:g} ps): its "
             f"autocorrelation time ({tau.time:.3g} ps) is not resolved; the stride uses the interval "
             "instead (sample more often for a shorter stride)")
-    if fluctuation < BARELY_MOVED * span:
-        warnings.append(
-            f"{name}: the CV barely moved (fluctuation {fluctuation:.3g} {unit}, {fluctuation / span:.1e} of "
-            f"the {'period' if period is not None else 'range visited'}); check that it is not frozen by a "
-            "constraint or defined on the wrong atoms")
     return CVStatistics(name, unit, period, mean, fluctuation, lowest, highest, tau.time,
                         tau.error if decayed else float("nan"), decayed, n_basins, on)
 
@@ -446,7 +447,7 @@ def _propose(stats, ranges, *, temperature, timestep, interval, barrier, afforda
         else:
             if rng is None:
                 width = s.highest - s.lowest
-                rng = (_round(s.lowest - width), _round(s.highest + width))
+                rng = (_round_near(s.lowest - width, w), _round_near(s.highest + width, w))
                 warnings.append(
                     f"{s.name}: no range of interest given; the grid spans the range the short run visited "
                     f"({s.lowest:.4g} .. {s.highest:.4g}) widened by its width on each side. Metadynamics "
@@ -456,8 +457,8 @@ def _propose(stats, ranges, *, temperature, timestep, interval, barrier, afforda
                 warnings.append(f"{s.name}: the short run sat at {s.mean:.4g}, outside your range of "
                                 f"interest {rng[0]:g} .. {rng[1]:g}; the biased run must start inside it")
             margin = WALL_MARGIN_SIGMAS * w
-            lower.append(_round(rng[0] - margin))
-            upper.append(_round(rng[1] + margin))
+            lower.append(_round_near(rng[0] - margin, w))
+            upper.append(_round_near(rng[1] + margin, w))
             extent.append(rng[1] - rng[0])
             k = _round(WALL_RISE_GAMMA_KT * gamma * kt / margin**2, 3)
             walls += [Wall(cv=i, bound=rng[0], k=k, side="below"),
@@ -465,6 +466,15 @@ def _propose(stats, ranges, *, temperature, timestep, interval, barrier, afforda
             why = (f"{s.name}: walls at the range of interest {rng[0]:g} .. {rng[1]:g} (k = {k:g} kJ/mol/"
                    f"{s.unit}^2: {WALL_RISE_GAMMA_KT:g} gamma kBT at the grid edge, rule of this package), "
                    f"grid {WALL_MARGIN_SIGMAS:g} hill widths beyond them (common practice)")
+        if s.period is None and ranges[i] is None:  # no scale but the CV's own size
+            scale, what, fraction = abs(s.mean), "its mean value", 1e-4
+        else:
+            scale, fraction = extent[-1], BARELY_MOVED
+            what = "the period" if s.period is not None else "the range of interest"
+        if s.fluctuation < fraction * scale:
+            warnings.append(f"{s.name}: the CV barely moved (fluctuation {s.fluctuation:.3g} {s.unit}, "
+                            f"{s.fluctuation / scale:.1e} of {what}): the hills would be tiny; check that it "
+                            "is not frozen by a constraint or defined on the wrong atoms")
         bins.append(int(math.ceil((upper[-1] - lower[-1]) / (SPACING_FRACTION * w) - 1e-9)))
         reasons.append((f"grid[{s.name}]", why + f"; {bins[-1]} bins: spacing "
                         f"{(upper[-1] - lower[-1]) / bins[-1]:.3g} <= sigma/3 (common practice)"))
