@@ -1,5 +1,7 @@
-"""The run-time side of the OpenMM adapter (private; built by ``gridbias.openmm.attach``): reading CVs,
-depositing, keeping the engine's copy of the bias in step, checkpoints and the reporter."""
+"""The OpenMM adapter at run time: BiasLink (CVs, deposits, engine in step, save/restore) and BiasReporter.
+
+Both are made by ``gridbias.openmm.attach`` and ``BiasLink.reporter``; the layout of the run checkpoint
+they write and read is :mod:`gridbias.runs`'s."""
 
 from __future__ import annotations
 
@@ -12,15 +14,14 @@ import weakref
 
 import numpy as np
 
-from ._openmm_forces import require_openmm, same_object
-from .bias import GridBias
-from .errors import BlownUpError, CheckpointError, CVLogError, ParameterError
+from ..bias import GridBias
+from ..errors import BlownUpError, CheckpointError, CVLogError, ParameterError
+from ..runs import RunCheckpoint, read_run_checkpoint, write_run_checkpoint
+from ._units import in_md_units
+from .forces import require_openmm, same_object
 
-__all__ = ["BiasLink", "BiasReporter", "CHECKPOINT_KIND", "DEFAULT_MAX_CHECKPOINT_FAILURES"]
+__all__ = ["BiasLink", "BiasReporter", "DEFAULT_MAX_CHECKPOINT_FAILURES"]
 
-#: The ``kind`` of a run checkpoint written by ``BiasLink.save`` (gridbias.checkpoint container).
-CHECKPOINT_KIND = "gridbias.openmm-run"
-_CHECKPOINT_VERSION = 1
 
 #: Checkpoints in a row that may fail to be written (disk full, I/O error) before the reporter stops the
 #: run. One or two failures are survived (a transient network file system error, space freed in time),
@@ -81,9 +82,9 @@ class BiasLink:
         if any(cv.geometric for cv in self.cvs):
             if state is None:
                 state = context.getState(getPositions=True)
-            pos_n3 = np.asarray(state.getPositions(asNumpy=True)._value)
+            pos_n3 = np.asarray(in_md_units(state.getPositions(asNumpy=True)))
             if self._periodic_box:
-                box = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value)
+                box = np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)))
         s = np.empty(len(self.cvs))
         for i, cv in enumerate(self.cvs):
             if cv.geometric:
@@ -97,7 +98,7 @@ class BiasLink:
     def bias_energy(self, simulation) -> float:
         """The bias energy the engine applies now, kJ/mol (its force group's energy)."""
         state = _context_of(simulation).getState(getEnergy=True, groups={self.force_group})
-        return float(state.getPotentialEnergy()._value)
+        return float(in_md_units(state.getPotentialEnergy()))
 
     # -- engine state -----------------------------------------------------------------------------
     def _bind(self, context):
@@ -136,7 +137,7 @@ class BiasLink:
         if s is None:
             s = self.cv_values(context)
         if time is None:
-            time = float(context.getState().getTime()._value)
+            time = float(in_md_units(context.getState().getTime()))
         n_before = self._bias.n_hills
         h = self._bias.deposit(s, time=time)
         # Mirror every hill the call added: one normally, up to one per walker for a shared bias.
@@ -162,44 +163,31 @@ class BiasLink:
     def save(self, simulation, path) -> None:
         """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state.
 
-        The file (a gridbias.checkpoint container of kind ``CHECKPOINT_KIND``) is replaced atomically.
-        Nothing is written when positions or velocities are not finite (the last good file stays).
+        The file (a run checkpoint, layout in :mod:`gridbias.runs`) is replaced atomically. Nothing is
+        written when positions or velocities are not finite (the last good file stays).
         """
-        from .checkpoint import write_checkpoint
-
         openmm = require_openmm()
         context = _context_of(simulation)
         self._bind(context)
         state = context.getState(getPositions=True, getVelocities=True)
-        positions = np.asarray(state.getPositions(asNumpy=True)._value, dtype=float)
-        velocities = np.asarray(state.getVelocities(asNumpy=True)._value, dtype=float)
+        positions = np.asarray(in_md_units(state.getPositions(asNumpy=True)), dtype=float)
+        velocities = np.asarray(in_md_units(state.getVelocities(asNumpy=True)), dtype=float)
         if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
             raise BlownUpError(f"positions or velocities are not finite at step {context.getStepCount()}: the "
                                 f"simulation has blown up; {os.fspath(path)!r} was not overwritten")
-        bias_meta, bias_arrays = self._bias.to_state()
-        meta = {
-            "version": _CHECKPOINT_VERSION,
-            "bias": bias_meta,
-            "cvs": self.describe_cvs(),
-            "labels": self.labels(),
-            "n_particles": self.system.getNumParticles(),
-            "platform": context.getPlatform().getName(),
-            "openmm_version": openmm.__version__,
-            "step": int(context.getStepCount()),
-            "time_ps": float(state.getTime()._value),
-            "engine": {"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
-                       "n_pending": self._n_pending, "name": self.name},
-            "written": _time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-        }
-        arrays = {f"bias.{k}": np.ascontiguousarray(v) for k, v in bias_arrays.items()}
-        arrays["engine.folded_values"] = self._folded_values
-        arrays["md.checkpoint"] = np.frombuffer(context.createCheckpoint(), dtype=np.uint8)
-        arrays["md.positions"] = positions
-        arrays["md.velocities"] = velocities
-        arrays["md.box"] = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value, dtype=float)
-        write_checkpoint(path, meta, arrays, kind=CHECKPOINT_KIND)
+        bias_state, bias_arrays = self._bias.to_state()
+        write_run_checkpoint(path, RunCheckpoint(
+            path=os.fspath(path), step=int(context.getStepCount()), time=float(in_md_units(state.getTime())),
+            platform=context.getPlatform().getName(), labels=tuple(self.labels()), cvs=tuple(self.describe_cvs()),
+            n_particles=self.system.getNumParticles(), bias_state=bias_state, bias_arrays=bias_arrays,
+            engine={"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
+                    "n_pending": self._n_pending, "name": self.name},
+            folded_values=self._folded_values, md_checkpoint=context.createCheckpoint(),
+            positions=positions, velocities=velocities,
+            box=np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float),
+            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z")))
 
-    def restore(self, simulation, path) -> dict:
+    def restore(self, simulation, path) -> RunCheckpoint:
         """Continue from a checkpoint: restores the bias, the MD state and the engine's bias exactly.
 
         The engine's own checkpoint bytes are used when the platform matches; otherwise the portable
@@ -210,30 +198,24 @@ class BiasLink:
 
         Returns
         -------
-        dict : the checkpoint's metadata (step, time_ps, platform, ...).
+        gridbias.runs.RunCheckpoint
+            What the checkpoint held (``step``, ``time`` in ps, ``platform``, ...).
         """
-        from .checkpoint import read_checkpoint
-
         context = _context_of(simulation)
-        meta, arrays = read_checkpoint(path, kind=CHECKPOINT_KIND)
+        checkpoint = read_run_checkpoint(path)
+        self._check_compatible(checkpoint, path)
         try:
-            self._check_compatible(meta, path)
-            state = {k[5:]: v for k, v in arrays.items() if k.startswith("bias.")}
             # A bias that restores itself (a SharedBias of walkers: collective, stays shared) does so.
             restored = getattr(self._bias, "restored", None)
-            bias = restored(meta["bias"], state) if callable(restored) else GridBias.from_state(meta["bias"], state)
-            folded = arrays["engine.folded_values"]
-            n_folded = int(meta["engine"]["n_folded"])
-            saved_platform = meta["platform"]
-            int(meta["step"]), float(meta["time_ps"])  # used below; checked before anything changes
-            for name in ("md.checkpoint", "md.positions", "md.velocities", "md.box"):
-                arrays[name]
+            bias = (restored(checkpoint.bias_state, checkpoint.bias_arrays) if callable(restored)
+                    else GridBias.from_state(checkpoint.bias_state, checkpoint.bias_arrays))
         except CheckpointError:
             raise
         except KeyError as exc:
             raise CheckpointError(f"{path}: checkpoint is incomplete (missing {exc})") from exc
         except (TypeError, ValueError, AttributeError) as exc:
             raise CheckpointError(f"{path}: checkpoint metadata is malformed ({type(exc).__name__}: {exc})") from exc
+        folded, n_folded = checkpoint.folded_values, checkpoint.engine["n_folded"]
         diff = self._bias.describe_difference(bias)
         if diff:
             raise CheckpointError(f"{path}: the bias {diff} (this run vs checkpoint)")
@@ -241,9 +223,9 @@ class BiasLink:
             raise CheckpointError(f"{path}: engine table of shape {folded.shape} / n_folded={n_folded} does not "
                                   f"fit the bias (grid shape {bias.grid.shape}, {bias.n_hills} hills)")
         platform = context.getPlatform().getName()
-        if saved_platform == platform:
+        if checkpoint.platform == platform:
             try:
-                context.loadCheckpoint(arrays["md.checkpoint"].tobytes())
+                context.loadCheckpoint(checkpoint.md_checkpoint)
                 exact = True
             except Exception as exc:  # another OpenMM build or CPU: fall back to the portable state
                 _log.warning("%s: the engine could not load its own checkpoint (%s); continuing from the "
@@ -251,16 +233,16 @@ class BiasLink:
                 exact = False
         else:
             _log.warning("%s was written on the %s platform and is restored on %s: continuing from the portable "
-                         "state (positions, velocities, box, step, time), not bit-for-bit", path, meta["platform"],
-                         platform)
+                         "state (positions, velocities, box, step, time), not bit-for-bit", path,
+                         checkpoint.platform, platform)
             exact = False
         if not exact:
-            self._load_portable(context, meta, arrays)
+            self._load_portable(context, checkpoint)
         self._bias._adopt(bias)
         self._install(context, folded, n_folded)
         for rep in list(self._reporters):
-            rep._restored(int(meta["step"]))
-        return meta
+            rep._restored(checkpoint.step)
+        return checkpoint
 
     def _install(self, context, folded, n_folded):
         """Put exactly the engine state of the checkpoint into ``context``: table + pending hills."""
@@ -281,15 +263,13 @@ class BiasLink:
         self._n_folded = n_folded
         self._n_pending = pending
 
-    def _check_compatible(self, meta, path):
-        if int(meta["version"]) > _CHECKPOINT_VERSION:
-            raise CheckpointError(f"{path}: written by a newer gridbias (format {meta['version']}); upgrade")
+    def _check_compatible(self, checkpoint, path):
         n = self.system.getNumParticles()
-        if int(meta["n_particles"]) != n:
-            raise CheckpointError(f"{path} was written for a System of {meta['n_particles']} particles; this "
+        if checkpoint.n_particles != n:
+            raise CheckpointError(f"{path} was written for a System of {checkpoint.n_particles} particles; this "
                                   f"System has {n}")
         mine = self.describe_cvs()
-        theirs = meta["cvs"]
+        theirs = checkpoint.cvs
         if len(theirs) != len(mine):
             raise CheckpointError(f"{path} holds {len(theirs)} CVs; this link has {len(mine)}")
         for i, (a, b) in enumerate(zip(mine, theirs)):
@@ -297,13 +277,12 @@ class BiasLink:
                 raise CheckpointError(f"{path}: CV {i} differs: checkpoint {b}, this link {a}")
 
     @staticmethod
-    def _load_portable(context, meta, arrays):
-        box = arrays["md.box"]
-        context.setPeriodicBoxVectors(*[tuple(float(x) for x in row) for row in box])
-        context.setPositions(arrays["md.positions"])
-        context.setVelocities(arrays["md.velocities"])
-        context.setTime(float(meta["time_ps"]))
-        context.setStepCount(int(meta["step"]))
+    def _load_portable(context, checkpoint):
+        context.setPeriodicBoxVectors(*[tuple(float(x) for x in row) for row in checkpoint.box])
+        context.setPositions(checkpoint.positions)
+        context.setVelocities(checkpoint.velocities)
+        context.setTime(checkpoint.time)
+        context.setStepCount(checkpoint.step)
 
 
 def _context_of(simulation):
@@ -366,7 +345,7 @@ class BiasReporter:
         self._writer = None
         self._lock = None
         if self.checkpoint is not None:
-            from .checkpoint import CheckpointLock
+            from ..checkpoint import CheckpointLock
 
             self._lock = CheckpointLock(self.checkpoint).acquire()
             self._finalizer = weakref.finalize(self, self._lock.release)
@@ -398,12 +377,12 @@ class BiasReporter:
         integrator = simulation.integrator
         if hasattr(integrator, "getTemperature"):
             t = integrator.getTemperature()
-            t = float(t._value) if hasattr(t, "_value") else float(t)
+            t = float(in_md_units(t))
             if not math.isclose(t, link.bias.temperature, rel_tol=1e-6):
                 warnings.warn(f"the integrator runs at {t} K but the bias was made for {link.bias.temperature} K; "
                               "well-tempered heights and free energies use the bias temperature", stacklevel=4)
         if self.log is not None:
-            from .cvlog import CVLogWriter
+            from ..cvlog import CVLogWriter
 
             labels = link.labels()
             columns = ["step", "time"] + labels + ["bias"]
@@ -414,7 +393,7 @@ class BiasReporter:
             if self._restored_step is not None:
                 self._writer.truncate_after(self._restored_step)
             elif self._writer.n_records:
-                from .cvlog import read_cvlog
+                from ..cvlog import read_cvlog
 
                 last = float(read_cvlog(self.log, mmap=True).column("step")[-1])
                 if last > simulation.currentStep:
@@ -442,7 +421,7 @@ class BiasReporter:
                          if self.last_checkpoint_step is not None else "no checkpoint was written by this run")
                 raise BlownUpError(f"CV values are not finite at step {step}: {s.tolist()} "
                                     f"({link.labels()}); the simulation has blown up. Stopping; {where}")
-            t = float(state.getTime()._value)
+            t = float(in_md_units(state.getTime()))
             if log_due:
                 energy, _ = link.bias.evaluate(s)
                 self._writer.write([[float(step), t, *s.tolist(), energy]])
