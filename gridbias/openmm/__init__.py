@@ -44,6 +44,7 @@ from ..grid import Grid
 from ..walls import Wall
 from . import cvs as _cvs
 from ._units import cv_unit_name, in_md_units, is_quantity, per_cv
+from .advice import advise_from_simulation
 from .forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
 from ..runs import CHECKPOINT_KIND
 from .link import DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
@@ -58,6 +59,7 @@ __all__ = [
     "from_force",
     "make_bias",
     "attach",
+    "advise_from_simulation",
     "BiasLink",
     "BiasReporter",
     "DEFAULT_FORCE_GROUP",

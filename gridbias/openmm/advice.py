@@ -7,14 +7,14 @@ The measuring and the rules live in :mod:`gridbias.advice`; this module only dri
 from __future__ import annotations
 
 import math
-import sys
-import time
 
 import numpy as np
 
-from . import _openmm_cvs as _cvs
-from .advice import MIN_FRAMES, advise
-from .errors import ParameterError
+from ..advice import MIN_FRAMES, advise
+from ..errors import ParameterError
+from ..progress import ProgressLine
+from . import cvs as _cvs
+from ._units import cv_unit_name, in_md_units
 
 __all__ = ["advise_from_simulation"]
 
@@ -23,20 +23,9 @@ __all__ = ["advise_from_simulation"]
 DEFAULT_SAMPLE_INTERVAL = 0.05
 
 
-def _ps(name, value, unit_name="picosecond"):
-    """A float in OpenMM's default unit; openmm.unit quantities converted."""
-    if hasattr(value, "value_in_unit") and hasattr(value, "unit"):
-        from openmm import unit
-
-        target = getattr(unit, unit_name)
-        if not value.unit.is_compatible(target):
-            raise ParameterError(f"{name} must be in units compatible with {unit_name}, got {value}")
-        value = value.value_in_unit(target)
-    try:
-        x = float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} must be a number ({unit_name}) or an openmm.unit quantity, "
-                             f"got {value!r}") from None
+def _positive(name, value, unit_name):
+    """A finite float > 0 in OpenMM's default unit ``unit_name``; quantities converted."""
+    x = in_md_units(value, name=name, unit=unit_name)
     if not (math.isfinite(x) and x > 0):
         raise ParameterError(f"{name} must be finite and > 0 ({unit_name}), got {value!r}")
     return x
@@ -52,19 +41,13 @@ def _cv_range(cv_range, cvs):
         if pair is None:
             out.append(None)
             continue
-        unit_name = {"nm": "nanometer", "rad": "radian"}.get(cv.unit, "dimensionless")
         try:
             lo, hi = pair
         except (TypeError, ValueError):
             raise ParameterError(f"cv_range[{i}] must be a pair (lowest, highest) or None, "
                                  f"got {pair!r}") from None
-        values = []
-        for v in (lo, hi):
-            if hasattr(v, "value_in_unit"):
-                from openmm import unit
-
-                v = v.value_in_unit(getattr(unit, unit_name))
-            values.append(v)
+        unit_name = cv_unit_name(cv)
+        values = [in_md_units(v, name=f"cv_range[{i}]", unit=unit_name) if unit_name else v for v in (lo, hi)]
         out.append(tuple(values))
     return out
 
@@ -95,7 +78,7 @@ def advise_from_simulation(simulation, cvs, *, duration, sample_interval=DEFAULT
     log : str or os.PathLike, keyword-only, optional
         Also write the samples to this CV log (``step, time, CVs``), which ``gridbias advise`` reads.
     progress : bool, keyword-only, default True
-        Show one progress line on stderr during runs longer than a few seconds.
+        Show one progress line on stderr (rewritten in place on a terminal; in a log, a line every 15 s).
 
     Returns
     -------
@@ -119,9 +102,9 @@ def advise_from_simulation(simulation, cvs, *, duration, sample_interval=DEFAULT
         if any(a >= n_atoms for a in cv.atoms):
             raise ParameterError(f"cvs[{i}] uses atom {max(cv.atoms)} but the System has {n_atoms} particles")
     resolved = [cv.resolved(system) for cv in cvs]
-    dt = _ps("the integrator's step size", integrator.getStepSize())
-    duration = _ps("duration", duration)
-    every = max(1, int(round(_ps("sample_interval", sample_interval) / dt)))
+    dt = _positive("the integrator's step size", integrator.getStepSize(), "picosecond")
+    duration = _positive("duration", duration, "picosecond")
+    every = max(1, int(round(_positive("sample_interval", sample_interval, "picosecond") / dt)))
     n_samples = int(duration / (every * dt))
     if n_samples < MIN_FRAMES:
         raise ParameterError(f"duration {duration:g} ps gives {n_samples} samples every {every * dt:g} ps; "
@@ -130,46 +113,41 @@ def advise_from_simulation(simulation, cvs, *, duration, sample_interval=DEFAULT
         if not hasattr(integrator, "getTemperature"):
             raise ParameterError(f"{type(integrator).__name__} has no temperature: give temperature= (K)")
         temperature = integrator.getTemperature()
-    temperature = _ps("temperature", temperature, "kelvin")
+    temperature = _positive("temperature", temperature, "kelvin")
     periodic_box = system.usesPeriodicBoundaryConditions()
     labels = [cv.label(i) for i, cv in enumerate(cvs)]
     writer = None
     if log is not None:
-        from .cvlog import CVLogWriter
+        from ..cvlog import CVLogWriter
 
         writer = CVLogWriter(log, ["step", "time"] + labels, ["1", "ps"] + [cv.unit for cv in cvs],
                              {"cvs": [cv.describe() for cv in resolved], "temperature": temperature,
                               "unbiased": True})
     series = np.empty((n_samples, len(cvs)))
-    started = last_shown = time.monotonic()
+    shown = ProgressLine() if progress else None
     try:
         for r in range(n_samples):
             simulation.step(every)
             state = context.getState(getPositions=True)
-            pos = np.asarray(state.getPositions(asNumpy=True)._value)
-            box = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value) if periodic_box else None
+            pos = np.asarray(in_md_units(state.getPositions(asNumpy=True)))
+            box = np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True))) if periodic_box else None
             series[r] = [cv.value(pos, box) for cv in resolved]
             if not np.isfinite(series[r]).all():
                 raise ParameterError(f"CV values are not finite after {(r + 1) * every} steps: "
                                      f"{series[r].tolist()}; the simulation has blown up")
             if writer is not None:
-                writer.write([[float(simulation.currentStep), float(state.getTime()._value), *series[r]]])
-            now = time.monotonic()
-            if progress and now - last_shown > 2.0:
-                last_shown = now
-                left = (now - started) / (r + 1) * (n_samples - r - 1)
-                done, total = (r + 1) * every * dt, n_samples * every * dt
-                sys.stderr.write(f"\radvice run: {done:.1f} of {total:.1f} ps, "
-                                 f"about {left:.0f} s left ")
-                sys.stderr.flush()
+                writer.write([[float(simulation.currentStep), in_md_units(state.getTime(), name="time",
+                                                                          unit="picosecond"), *series[r]]])
+            if shown is not None:
+                shown.update(f"advice run: {(r + 1) * every * dt:.1f} of {n_samples * every * dt:.1f} ps")
     finally:
         if writer is not None:
             writer.close()
-        if progress and last_shown != started:
-            sys.stderr.write("\n")
+        if shown is not None:
+            shown.finish()
     return advise(series, interval=every * dt, temperature=temperature, timestep=dt, names=labels,
                   units=[cv.unit for cv in cvs], periods=[cv.period for cv in cvs],
-                  barrier=None if barrier is None else _ps("barrier", barrier, "kilojoule_per_mole"),
+                  barrier=None if barrier is None else _positive("barrier", barrier, "kilojoule_per_mole"),
                   cv_range=_cv_range(cv_range, cvs),
                   affordable_time=None if affordable_time is None
-                  else _ps("affordable_time", affordable_time))
+                  else _positive("affordable_time", affordable_time, "picosecond"))
