@@ -34,6 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._modes import basin_labels, longest_stretch
+from ._series_files import Series, read_series
 from .analysis.autocorrelation import MIN_RUN_LENGTH, autocorrelation_time
 from .analysis.blocking import blocking_curve
 from .analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION
@@ -42,7 +43,8 @@ from .errors import ParameterError
 from .grid import MAX_DIMENSIONS, Grid
 from .walls import Wall
 
-__all__ = ["CVStatistics", "Advice", "advise", "advise_from_file", "MIN_FRAMES", "SIGMA_FRACTION",
+__all__ = ["CVStatistics", "Advice", "advise", "advise_from_file", "advise_from_series", "read_series",
+           "Series", "MIN_FRAMES", "SIGMA_FRACTION",
            "SPACING_FRACTION", "STRIDE_TIMES", "HEIGHT_KT", "BIASED_BARRIER_KT", "DEFAULT_BIAS_FACTOR",
            "WALL_MARGIN_SIGMAS", "WALL_RISE_GAMMA_KT", "PLANNING_FACTOR"]
 
@@ -538,8 +540,7 @@ def _propose(stats, ranges, *, temperature, timestep, interval, barrier, afforda
                   tuple(reasons), tuple(warnings), tuple(implications))
 
 
-def advise_from_file(path, *, columns=None, temperature=None, interval=None, periods=None,
-                     **options) -> Advice:
+def advise_from_file(path, *, columns=None, **options) -> Advice:
     """:func:`advise` on the CVs of an unbiased run stored in a file.
 
     Parameters
@@ -550,15 +551,8 @@ def advise_from_file(path, *, columns=None, temperature=None, interval=None, per
         converted to rad) or a NumPy ``.npy`` array (n, d) of CV values.
     columns : sequence of str, keyword-only, optional
         The CV columns; default every column but ``step``, ``time`` and ``bias``.
-    temperature : float, K, keyword-only
-        Default: the temperature recorded in a CV log.
-    interval : float, ps, keyword-only
-        Time between frames; default from the ``time`` column (required for ``.npy``).
-    periods : sequence of float or None, keyword-only, optional
-        Default: 2 pi for the dihedral CVs recorded in a CV log, else not periodic.
     **options
-        Passed to :func:`advise` (``barrier``, ``cv_range``, ``affordable_time``, ``timestep``); the time
-        step comes from a CV log's ``step`` and ``time`` columns unless given.
+        As for :func:`advise_from_series`.
 
     Returns
     -------
@@ -570,18 +564,43 @@ def advise_from_file(path, *, columns=None, temperature=None, interval=None, per
         A missing or unreadable file, an unknown column, frames not evenly spaced, or what :func:`advise`
         refuses.
     """
-    from ._series_files import read_series
+    return advise_from_series(read_series(path, columns=columns), **options)
 
-    found = read_series(path, columns=columns)
+
+def advise_from_series(series: Series, *, temperature=None, interval=None, periods=None, cv_range=None,
+                       **options) -> Advice:
+    """:func:`advise` on a :class:`Series` read by :func:`read_series`.
+
+    Parameters
+    ----------
+    series : Series
+    temperature : float, K, keyword-only
+        Default: the temperature recorded in a CV log.
+    interval : float, ps, keyword-only
+        Time between frames; default from the file's ``time`` column (required without one).
+    periods : sequence of float or None, keyword-only, optional
+        Default: 2 pi for the dihedral CVs recorded in a CV log, else not periodic.
+    cv_range : sequence (one entry per CV) or dict name -> (lowest, highest), keyword-only, optional
+    **options
+        Passed to :func:`advise` (``barrier``, ``affordable_time``, ``timestep``); the time step comes from
+        a CV log's ``step`` and ``time`` columns unless given.
+    """
     if interval is None:
-        if found.interval is None:
-            raise ParameterError(f"{found.path!r} has no time column: give the frame interval (ps)")
-        interval = found.interval
+        if series.interval is None:
+            raise ParameterError(f"{series.path!r} has no time column: give the frame interval (ps)")
+        interval = series.interval
     if temperature is None:
-        if found.temperature is None:
-            raise ParameterError(f"{found.path!r} records no temperature: give the temperature (K)")
-        temperature = found.temperature
-    if found.timestep is not None:
-        options.setdefault("timestep", found.timestep)
-    return advise(found.data, interval=interval, temperature=temperature, names=found.names,
-                  units=found.units, periods=found.periods if periods is None else periods, **options)
+        if series.temperature is None:
+            raise ParameterError(f"{series.path!r} records no temperature: give the temperature (K)")
+        temperature = series.temperature
+    if series.timestep is not None:
+        options.setdefault("timestep", series.timestep)
+    if isinstance(cv_range, dict):
+        unknown = sorted(set(cv_range) - set(series.names))
+        if unknown:
+            raise ParameterError(f"cv_range names {unknown[0]!r}, which is not one of the CVs "
+                                 f"{', '.join(series.names)}")
+        cv_range = [cv_range.get(name) for name in series.names]
+    return advise(series.data, interval=interval, temperature=temperature, names=series.names,
+                  units=series.units, periods=series.periods if periods is None else periods,
+                  cv_range=cv_range, **options)
