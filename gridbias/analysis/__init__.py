@@ -10,11 +10,13 @@ Modules, one job each:
 - ``reweighting``: frame weights to the unbiased ensemble (time-independent offset, final bias), Kish ESS.
 - ``histograms``: free energy along any per-frame quantity, with block errors.
 - ``blocking``: block analysis of a correlated series.
+- ``autocorrelation``: integrated autocorrelation time of a series, with its error.
 - ``basins``: basins from boxes or from the surface's minima; transitions between their cores.
 - ``differences``: basin free-energy differences against simulated time.
 - ``convergence``: the convergence verdict.
 """
 
+from .autocorrelation import AutocorrelationTime, autocorrelation_time
 from .basins import (
     Basins,
     Transitions,
@@ -57,7 +59,7 @@ __all__ = [
     "FrameWeights", "offset_weights", "final_bias_weights", "time_independent_offset",
     "kish_effective_sample_size",
     "Profile", "free_energy_along",
-    "BlockingCurve", "blocking_curve",
+    "BlockingCurve", "blocking_curve", "AutocorrelationTime", "autocorrelation_time",
     "Basins", "Transitions", "basins_from_boxes", "find_basins", "basin_free_energies", "count_transitions",
     "BasinDifferences", "basin_differences_from_bias", "basin_differences_from_frames",
     "Criterion", "ConvergenceVerdict", "drift_criterion", "transition_criterion", "height_criterion",

@@ -16,8 +16,7 @@ import pytest
 
 from gridbias import KB, ParameterError
 from gridbias import advice as adv
-from gridbias.analysis import blocking_curve
-from gridbias.analysis.autocorrelation import autocorrelation_time
+from gridbias.analysis import autocorrelation_time, blocking_curve
 from gridbias.testsystems import DoubleWell, HarmonicWell, run_langevin
 
 SEEDS = (101, 202, 303)
