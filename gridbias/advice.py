@@ -187,15 +187,19 @@ class Advice:
     def code(self) -> str:
         """Ready-to-paste ``make_bias(...)``, ``attach`` and reporter calls for an OpenMM script."""
         uses_pi = any(_pi_text(v) != repr(v) for v in self.lower + self.upper)
-        walls = ", ".join(f'{{"cv": {w.cv}, "bound": {w.bound!r}, "k": {w.k!r}, "side": "{w.side}"}}'
-                          for w in self.walls)
+        pad = " " * len("bias = gbo.make_bias(")
+        walls = [f'{{"cv": {w.cv}, "bound": {w.bound!r}, "k": {w.k!r}, "side": "{w.side}"}}'
+                 for w in self.walls]
+        end = "," if walls else ")"
         lines = ["import math" if uses_pi else None,
-                 "bias = gbo.make_bias(cvs, lower=[{}], upper=[{}], bins={}, sigma={},".format(
-                     ", ".join(map(_pi_text, self.lower)), ", ".join(map(_pi_text, self.upper)),
-                     list(self.bins), list(self.sigma)),
-                 f"                     height={self.height!r}, temperature={self.temperature!r}, "
-                 f"bias_factor={self.bias_factor!r},",
-                 f"                     walls=[{walls}])",
+                 f"bias = gbo.make_bias(cvs, lower=[{', '.join(map(_pi_text, self.lower))}], "
+                 f"upper=[{', '.join(map(_pi_text, self.upper))}],",
+                 f"{pad}bins={list(self.bins)}, sigma={list(self.sigma)}, height={self.height!r},",
+                 f"{pad}temperature={self.temperature!r}, bias_factor={self.bias_factor!r}{end}"]
+        if walls:
+            lines += [f"{pad}walls=[{walls[0]},"] + [f"{pad}       {w}," for w in walls[1:]]
+            lines[-1] = lines[-1][:-1] + "])"
+        lines += [
                  "link = gbo.attach(system, cvs, bias)",
                  SIMULATION_LINE]
         if self.stride is not None:
@@ -294,8 +298,9 @@ def _measure(x, *, name, unit, period, interval, warnings):
         decayed = False
     if not decayed:
         warnings.append(
-            f"{name}: the autocorrelation did not decay within the run ({tau.summary()}); the stride is "
-            f"based on a lower bound. Run at least {MIN_RUN_LENGTH:g} autocorrelation times long, or check "
+            f"{name}: the autocorrelation did not decay within the run (autocorrelation time at least "
+            f"{tau.time:.3g} ps; the run spans {tau.run_length:.1f} times that); the stride is based on a "
+            f"lower bound. Run at least {MIN_RUN_LENGTH:g} autocorrelation times long, or check "
             "whether the CV drifts (an unequilibrated start, a slow process)")
     elif tau.time < interval:
         warnings.append(
@@ -515,7 +520,7 @@ def _propose(stats, ranges, *, temperature, timestep, interval, barrier, afforda
         f"hills average about {rate:.4g} / t kJ/mol (t in ps), so they fall to "
         f"{100 * DEFAULT_MAX_HEIGHT_FRACTION:g} % of the initial height (the convergence verdict's "
         f"threshold) after about {time_to_small:,.0f} ps "
-        f"({time_to_small / stride_time:,.0f} hills)",
+        f"({time_to_small / stride_time:,.0f} hills); sooner if the CVs explore only part of that volume",
         f"plan for about {planned:,.0f} ps ({planned / stride_time:,.0f} hills): the basin differences must "
         "also stop drifting, which needs many transitions (on an analytic double well the verdict passed "
         "1.25-3.25 times after the hills were small); run until analysis.assess_convergence says converged"]
