@@ -33,10 +33,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._modes import basin_labels, longest_stretch
 from ._series_files import Series, read_series
-from .analysis.autocorrelation import MIN_RUN_LENGTH, autocorrelation_time
-from .analysis.blocking import blocking_curve
+from ._short_run import CVStatistics, measure_cv
 from .analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION
 from .bias import KB, GridBias
 from .errors import ParameterError
@@ -66,53 +64,6 @@ PLANNING_FACTOR = 4.0
 #: The line of the pasted code where the user's Simulation is created (after ``attach``).
 SIMULATION_LINE = "# ... create the Simulation here, after attach (attach adds forces to the System) ..."
 MAX_NODES = 4_000_000         # above this the grid is flagged (memory and engine table pushes)
-
-
-@dataclass(frozen=True)
-class CVStatistics:
-    """What the short run shows about one CV.
-
-    Attributes
-    ----------
-    name, unit : str
-    period : float or None
-        Period in CV units (periodic axis ``[-period/2, period/2]``), None when not periodic.
-    mean, fluctuation : float
-        Mean and standard deviation in the starting basin, CV units (circular about the mean if periodic).
-    lowest, highest : float
-        The range visited over the whole run (periodic: the arc about the mean, may cross the boundary).
-    autocorrelation_time, autocorrelation_error : float
-        Integrated autocorrelation time in the starting basin and its error, ps (error NaN: a lower bound).
-    decayed : bool
-        The autocorrelation decayed within the run (self-consistent window, >= 50 tau, blocking plateau).
-    n_basins : int
-        Basins the short run visited (density modes separated by a dip of at least 1 kBT).
-    measured_on : str
-        Which frames the fluctuation and the autocorrelation time come from.
-    """
-
-    name: str
-    unit: str
-    period: float | None
-    mean: float
-    fluctuation: float
-    lowest: float
-    highest: float
-    autocorrelation_time: float
-    autocorrelation_error: float
-    decayed: bool
-    n_basins: int
-    measured_on: str
-
-    def line(self) -> str:
-        """The statistics as one line of text."""
-        tau = (f"{self.autocorrelation_time:.3g} +/- {self.autocorrelation_error:.2g} ps" if self.decayed
-               else f">= {self.autocorrelation_time:.3g} ps (did not decay)")
-        kind = f"periodic {self.period:.4g}" if self.period is not None else "not periodic"
-        return (f"  {self.name} [{self.unit}, {kind}]: mean {self.mean:.4g}, "
-                f"fluctuation {self.fluctuation:.3g}, "
-                f"visited {self.lowest:.4g} .. {self.highest:.4g}, autocorrelation time {tau}, "
-                f"{self.n_basins} basin{'s' if self.n_basins != 1 else ''} seen ({self.measured_on})")
 
 
 @dataclass(frozen=True)
@@ -253,64 +204,6 @@ def _round_near(value: float, scale: float) -> float:
     return round(value, max(0, 2 - math.floor(math.log10(scale))))
 
 
-# ------------------------------------------------------------------------------------------ measuring
-def _wrap(x, period):
-    return x - period * np.round(x / period)
-
-
-def _measure(x, *, name, unit, period, interval, warnings):
-    n = x.size
-    if period is not None:
-        angle = 2 * np.pi * x / period
-        centre = period / (2 * np.pi) * math.atan2(np.sin(angle).mean(), np.cos(angle).mean())
-        spread = _wrap(x - centre, period)
-    else:
-        centre, spread = 0.0, x
-    if not np.ptp(spread) > 1e-12 * max(1.0, float(np.abs(x).max())):
-        raise ParameterError(f"CV {name!r} is constant ({x[0]!r} in all {n} frames): it cannot be "
-                             "measured; check the CV definition (atoms, constraints) or the column chosen")
-    labels, n_basins = basin_labels(x, period)
-    on = "all frames"
-    start, stop = 0, n
-    if n_basins > 1:
-        start, stop = longest_stretch(labels == labels[0])
-        on = f"starting basin, frames {start}..{stop - 1}"
-        warnings.append(
-            f"{name}: the short run hopped between {n_basins} basins, so its barrier is at most a few kBT at "
-            f"this temperature; fluctuation and autocorrelation time are measured inside the starting basin "
-            f"({on}). Check that this CV needs a bias at all, and that the grid covers every basin")
-    part = spread[start:stop]
-    if period is not None:
-        local = part.mean()
-        part_centre = centre + local
-        fluctuation = float(np.std(part))
-        mean = float(_wrap(part_centre, period))
-        lowest, highest = float(centre + spread.min()), float(centre + spread.max())
-    else:
-        mean, fluctuation = float(part.mean()), float(np.std(part))
-        lowest, highest = float(x.min()), float(x.max())
-    if part.size < 16 or not np.ptp(part) > 0:
-        raise ParameterError(f"CV {name!r}: the longest stretch inside the starting basin has {part.size} "
-                             "frames; too few to measure; run longer")
-    tau = autocorrelation_time(part, interval=interval)
-    decayed = tau.decayed
-    if decayed and part.size >= 128 and not blocking_curve(part).plateau_found:
-        decayed = False
-    if not decayed:
-        warnings.append(
-            f"{name}: the autocorrelation did not decay within the run (autocorrelation time at least "
-            f"{tau.time:.3g} ps; the run spans {tau.run_length:.1f} times that); the stride is based on a "
-            f"lower bound. Run at least {MIN_RUN_LENGTH:g} autocorrelation times long, or check "
-            "whether the CV drifts (an unequilibrated start, a slow process)")
-    elif tau.time < interval:
-        warnings.append(
-            f"{name}: the CV decorrelates within one sampling interval ({interval:g} ps): its "
-            f"autocorrelation time ({tau.time:.3g} ps) is not resolved; the stride uses the interval "
-            "instead (sample more often for a shorter stride)")
-    return CVStatistics(name, unit, period, mean, fluctuation, lowest, highest, tau.time,
-                        tau.error if decayed else float("nan"), decayed, n_basins, on)
-
-
 # ------------------------------------------------------------------------------------------ proposing
 def _per_cv(name, values, d, convert):
     if values is None:
@@ -413,7 +306,7 @@ def advise(cv_series, *, interval, temperature, timestep=None, names=None, units
             raise ParameterError(f"cv_range[{i}] must be None: CV {names[i]!r} is periodic and its grid "
                                  "spans the whole period")
     warnings: list = []
-    stats = tuple(_measure(data[:, i], name=names[i], unit=units[i], period=periods[i], interval=interval,
+    stats = tuple(measure_cv(data[:, i], name=names[i], unit=units[i], period=periods[i], interval=interval,
                            warnings=warnings) for i in range(d))
     return _propose(stats, ranges, temperature=temperature, timestep=timestep, interval=interval,
                     barrier=barrier, affordable_time=affordable_time, warnings=warnings,
