@@ -74,6 +74,9 @@ def _from_log(path, columns):
                          strict=False))
     periods = tuple(2 * math.pi if isinstance(described.get(c), dict)
                     and described[c].get("kind") == "dihedral" else None for c in chosen)
+    if "bias" in log.columns and log.n_records and np.any(log.column("bias") != 0.0):
+        raise ParameterError(f"{path!r} is the log of a biased run (its bias column is not zero): the advice "
+                             "needs an unbiased run, whose fluctuations and correlation times are the system's own")
     temperature = log.metadata.get("temperature")
     data = np.column_stack([log.column(c) for c in chosen]) if log.n_records else np.empty((0, len(chosen)))
     return Series(path, data, tuple(chosen), tuple(log.unit(c) for c in chosen), periods, interval, timestep,

@@ -168,7 +168,8 @@ def measure_cv(x, *, name, unit, period, interval, warnings):
         warnings.append(
             f"{name}: the short run hopped between {n_basins} basins, so its barrier is at most a few kBT at "
             f"this temperature; fluctuation and autocorrelation time are measured inside the starting basin "
-            f"({on}). Check that this CV needs a bias at all, and that the grid covers every basin")
+            f"(its longest stay, frames {start}..{stop - 1}). Check that this CV needs a bias at all, and that "
+            "the grid covers every basin")
     part = spread[start:stop]
     if period is not None:
         local = part.mean()

@@ -42,12 +42,14 @@ from .grid import MAX_DIMENSIONS, Grid
 from .walls import Wall
 
 __all__ = ["CVStatistics", "Advice", "advise", "advise_from_file", "advise_from_series", "read_series",
-           "Series", "MIN_FRAMES", "SIGMA_FRACTION",
+           "Series", "MIN_FRAMES", "MAX_FRAMES", "SIGMA_FRACTION",
            "SPACING_FRACTION", "STRIDE_TIMES", "HEIGHT_KT", "BIASED_BARRIER_KT", "DEFAULT_BIAS_FACTOR",
            "WALL_MARGIN_SIGMAS", "WALL_RISE_GAMMA_KT", "PLANNING_FACTOR"]
 
 #: Fewest frames accepted: fewer cannot show a fluctuation, let alone an autocorrelation time.
 MIN_FRAMES = 100
+#: Most frames accepted (the autocorrelation's FFT needs ~64 bytes per frame).
+MAX_FRAMES = 4_000_000
 SIGMA_FRACTION = 0.5          # hill width / fluctuation (common practice: 1/3 to 1/2)
 SPACING_FRACTION = 1.0 / 3.0  # grid spacing / hill width, at most (common practice)
 STRIDE_TIMES = 3.0            # stride / autocorrelation time (common practice: a few)
@@ -292,6 +294,9 @@ def advise(cv_series, *, interval, temperature, timestep=None, names=None, units
     if n < MIN_FRAMES:
         raise ParameterError(f"the run is too short: {n} frames, at least {MIN_FRAMES} are needed (and many "
                              "autocorrelation times; see the warnings)")
+    if n > MAX_FRAMES:
+        raise ParameterError(f"{n:,} frames is not a short run (at most {MAX_FRAMES:,}): pass every k-th frame "
+                             "with interval k times as long, or a shorter part of the run")
     interval = _positive("interval", interval, "ps")
     temperature = _positive("temperature", temperature, "K")
     timestep = None if timestep is None else _positive("timestep", timestep, "ps")
@@ -317,9 +322,8 @@ def _propose(stats, ranges, *, temperature, timestep, interval, barrier, afforda
     kt = KB * temperature
     reasons = []
     sigma = tuple(_round(SIGMA_FRACTION * s.fluctuation, 3) for s in stats)
-    reasons.append(("sigma", "; ".join(
-        f"{s.name} {w:.3g} {s.unit} = half its fluctuation {s.fluctuation:.3g} (common practice: a half to a "
-        "third of the fluctuation in the starting basin)" for s, w in zip(stats, sigma, strict=True))))
+    reasons.append(("sigma", ", ".join(f"{s.name} {w:.3g} {s.unit}" for s, w in zip(stats, sigma, strict=True))
+                    + ": half the fluctuation in the starting basin (common practice: a half to a third)"))
     if barrier is not None:
         gamma = float(max(2, round(barrier / (BIASED_BARRIER_KT * kt))))
         reasons.append(("bias_factor", f"{gamma:g}: the expected barrier {barrier:g} kJ/mol = "

@@ -88,3 +88,17 @@ def test_bad_files_are_refused(tmp_path):
         adv.advise_from_file(csv, temperature=T)
     with pytest.raises(ParameterError, match="records no temperature"):
         adv.advise_from_file(npy, interval=0.1)
+
+
+def test_log_of_a_biased_run_is_refused(tmp_path):
+    x, _ = _series(3, n=500)
+    path = tmp_path / "biased.gbl"
+    with CVLogWriter(path, ["step", "time", "d", "bias"], ["1", "ps", "nm", "kJ/mol"], {"temperature": T}) as log:
+        log.write(np.column_stack([np.arange(500.0), 0.01 * np.arange(500.0), x, np.full(500, 3.0)]))
+    with pytest.raises(ParameterError, match="biased run"):
+        adv.advise_from_file(path)
+
+
+def test_a_long_run_is_not_a_short_run():
+    with pytest.raises(ParameterError, match="not a short run"):
+        adv.advise(np.zeros(adv.MAX_FRAMES + 1), interval=0.01, temperature=T)
