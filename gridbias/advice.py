@@ -29,6 +29,7 @@ analytic double well in tests/core/test_advice_double_well.py, not a guarantee.
 from __future__ import annotations
 
 import math
+import textwrap
 from dataclasses import dataclass
 
 import numpy as np
@@ -156,9 +157,9 @@ class Advice:
                  "link = gbo.attach(system, cvs, bias)",
                  SIMULATION_LINE]
         if self.stride is not None:
-            lines.append(f"simulation.reporters.append(link.reporter(stride={self.stride}, "
-                         f"checkpoint=\"run.gbz\", checkpoint_every={self.checkpoint_every}, "
-                         "log=\"run.gbl\"))")
+            lines += [f"simulation.reporters.append(link.reporter(stride={self.stride}, checkpoint=\"run.gbz\", "
+                      f"checkpoint_every={self.checkpoint_every},",
+                      " " * len("simulation.reporters.append(link.reporter(") + "log=\"run.gbl\"))"]
         else:
             lines += [f"stride = max(1, round({self.stride_time!r} / timestep_ps))   # timestep_ps: your MD "
                       "time step in ps",
@@ -167,23 +168,30 @@ class Advice:
                       f"{self.stride_time!r})), log=\"run.gbl\"))"]
         return "\n".join(line for line in lines if line is not None)
 
-    def render(self) -> str:
-        """The whole advice as text: measurements, parameters with reasons, implications, warnings, code."""
+    def render(self, *, width: int = 110) -> str:
+        """The whole advice as text: measurements, parameters with reasons, implications, warnings, code.
+
+        Prose is wrapped at ``width`` characters; the code lines are left whole so they paste as they are.
+        """
+        def item(first, text):
+            return textwrap.fill(text, width, initial_indent=first, subsequent_indent=" " * (len(first) + 2),
+                                 break_on_hyphens=False)
+
         out = [f"Advice from a short unbiased run at {self.temperature:g} K (kBT = {self.kT:.4g} kJ/mol)",
                "Measured:"]
-        out += [s.line() for s in self.statistics]
+        out += [item("  ", s.line().strip()) for s in self.statistics]
         out.append("Proposed parameters (rules of thumb, common practice unless a source is named):")
-        out += [f"  {name}: {why}" for name, why in self.reasons]
+        out += [item("  ", f"{name}: {why}") for name, why in self.reasons]
         out.append("What the run length implies (an estimate, not a guarantee):")
-        out += [f"  {text}" for text in self.implications]
+        out += [item("  ", text) for text in self.implications]
         if self.warnings:
             out.append("WARNINGS (the data cannot fully support these choices):")
-            out += [f"  ! {text}" for text in self.warnings]
-        out.append("Paste into your OpenMM script (cvs: your list of gbo CVs, in this order: "
-                   + ", ".join(s.name for s in self.statistics) + "):")
+            out += [item("  ! ", text) for text in self.warnings]
+        out.append(item("", "Paste into your OpenMM script (cvs: your list of gbo CVs, in this order: "
+                        + ", ".join(s.name for s in self.statistics) + "):"))
         out += ["    " + line for line in self.code().splitlines()]
-        out.append("Check the result: validate the surface with repeat runs (other seeds, hill widths, bias "
-                   "factors) before relying on it.")
+        out.append(item("", "Check the result: validate the surface with repeat runs (other seeds, hill widths, "
+                        "bias factors) before relying on it."))
         return "\n".join(out)
 
     __str__ = render
