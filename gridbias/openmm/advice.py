@@ -7,6 +7,7 @@ The measuring and the rules live in :mod:`gridbias.advice`; this module only dri
 from __future__ import annotations
 
 import math
+import os
 
 import numpy as np
 
@@ -76,7 +77,7 @@ def advise_from_simulation(simulation, cvs, *, duration, sample_interval=DEFAULT
     barrier, cv_range, affordable_time : keyword-only, optional
         As in :func:`gridbias.advice.advise`; quantities accepted (kJ/mol, CV units, ps).
     log : str or os.PathLike, keyword-only, optional
-        Also write the samples to this CV log (``step, time, CVs``), which ``gridbias advise`` reads.
+        Also write the samples to this new CV log (``step, time, CVs``), which ``gridbias advise`` reads.
     progress : bool, keyword-only, default True
         Show one progress line on stderr (rewritten in place on a terminal; in a log, a line every 15 s).
 
@@ -117,6 +118,9 @@ def advise_from_simulation(simulation, cvs, *, duration, sample_interval=DEFAULT
     periodic_box = system.usesPeriodicBoundaryConditions()
     labels = [cv.label(i) for i, cv in enumerate(cvs)]
     writer = None
+    if log is not None and os.path.exists(log):
+        raise ParameterError(f"log {os.fspath(log)!r} already exists: remove it or choose another path (the "
+                             "samples of one short run go into one new log)")
     if log is not None:
         from ..cvlog import CVLogWriter
 

@@ -84,9 +84,12 @@ def test_pasted_code_runs_the_biased_simulation(tmp_path, monkeypatch):
         reporter.close()
 
 
-def test_bad_input():
+def test_bad_input(tmp_path):
     topology, system = _system()
     simulation = _simulation(topology, system, 9)
+    (tmp_path / "old.gbl").write_bytes(b"")
+    with pytest.raises(ParameterError, match="already exists"):
+        gbo.advise_from_simulation(simulation, CVS, duration=10.0, log=tmp_path / "old.gbl", progress=False)
     with pytest.raises(ParameterError, match="at least 100 are needed"):
         gbo.advise_from_simulation(simulation, CVS, duration=1.0, progress=False)
     force_cv = gbo.from_force(openmm.CustomExternalForce("x"))
