@@ -7,6 +7,7 @@ Subcommands:
   points and barriers, verdict.
 - ``export``: write the free-energy surface of a checkpoint as CSV, NumPy .npz, PNG, SVG or PDF.
 - ``reweight``: the free energy along chosen columns of a CV log, reweighted to the unbiased ensemble.
+- ``advise``: metadynamics parameters from a short unbiased run (CV log, CSV or .npy), with reasons.
 
 Exit codes: 0 success; 1 the work itself failed or was interrupted (the simulation blew up, a disk filled,
 another run holds the checkpoint, Ctrl-C); 2 bad usage or bad input (unknown option, missing or
@@ -31,6 +32,7 @@ from dataclasses import replace
 
 import numpy as np
 
+from ._advise_command import add_advise_command
 from .exports import FIGURE_FORMATS, TABLE_FORMATS, CVDisplay, profile_bytes, surface_bytes, write_files
 from .progress import ProgressLine
 from .runs import load_run, log_column, read_log, run_frames
@@ -434,7 +436,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     parser = _Parser(prog="gridbias", formatter_class=_Formatter,
                      description="Grid-stored metadynamics: run the demo, look at a run's checkpoint, export "
-                                 "its free-energy surface, reweight its CV log.",
+                                 "its free-energy surface, reweight its CV log, get parameters from a short "
+                                 "unbiased run.",
                      epilog="Exit codes: 0 success, 1 the work failed or was interrupted, 2 bad usage or bad "
                             "input.\n" + _UNITS_NOTE)
     parser.add_argument("--version", action="version", version=f"gridbias {__version__}")
@@ -552,6 +555,9 @@ def build_parser() -> argparse.ArgumentParser:
     _add_frames(p)
     _add_angle_unit(p)
     p.set_defaults(handler=_cmd_reweight)
+
+    add_advise_command(sub, formatter_class=_Formatter, positive=_positive, names=_names,
+                       add_angle_unit=_add_angle_unit, units=_UNITS)
     return parser
 
 

@@ -10,6 +10,7 @@ Modules, one job each:
 - ``reweighting``: frame weights to the unbiased ensemble (time-independent offset, final bias), Kish ESS.
 - ``histograms``: free energy along any per-frame quantity, with block errors.
 - ``blocking``: block analysis of a correlated series.
+- ``autocorrelation``: integrated autocorrelation time of a series, with its error.
 - ``basins``: basins from boxes or from the surface's minima; transitions between their cores.
 - ``differences``: basin free-energy differences against simulated time.
 - ``convergence``: the convergence verdict (drift against its noise, transitions, heights, estimator
@@ -17,6 +18,7 @@ Modules, one job each:
 - ``barriers``: saddle points, barriers and minimum free-energy paths between adjacent basins.
 """
 
+from .autocorrelation import AutocorrelationTime, autocorrelation_time
 from .barriers import Crossing, Crossings, find_crossings
 from .basins import (
     Basins,
@@ -61,7 +63,7 @@ __all__ = [
     "FrameWeights", "offset_weights", "final_bias_weights", "time_independent_offset",
     "kish_effective_sample_size",
     "Profile", "free_energy_along",
-    "BlockingCurve", "blocking_curve",
+    "BlockingCurve", "blocking_curve", "AutocorrelationTime", "autocorrelation_time",
     "Basins", "Transitions", "basins_from_boxes", "find_basins", "basin_free_energies", "count_transitions",
     "BasinDifferences", "basin_differences_from_bias", "basin_differences_from_frames",
     "Criterion", "ConvergenceVerdict", "drift_criterion", "transition_criterion", "height_criterion",

@@ -47,6 +47,7 @@ from ..walls import Wall
 from . import cvs as _cvs
 from . import routes as _routes
 from ._units import cv_unit_name, in_md_units, is_quantity, per_cv
+from .advice import advise_from_simulation
 from .forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
 from .link import DEFAULT_MAX_WRITE_FAILURES, BiasLink, BiasReporter
 
@@ -60,6 +61,7 @@ __all__ = [
     "from_force",
     "make_bias",
     "attach",
+    "advise_from_simulation",
     "BiasLink",
     "BiasReporter",
     "DEFAULT_FORCE_GROUP",
