@@ -32,7 +32,7 @@ def _as_steps(name, value) -> np.ndarray:
 def _describe_misses(missing, frame_keys, record_keys, unit) -> str:
     first, last = record_keys.min(), record_keys.max()
     intervals = np.unique(np.diff(np.sort(record_keys)))
-    spacing = f"every {intervals[0]:g} {unit}" if intervals.size == 1 else "at irregular intervals"
+    spacing = f"one every {intervals[0]:g}" if intervals.size == 1 else "at irregular intervals"
     after = int((frame_keys[missing] > last).sum())
     before = int((frame_keys[missing] < first).sum())
     why = []
@@ -47,7 +47,7 @@ def _describe_misses(missing, frame_keys, record_keys, unit) -> str:
                    "or the frames come from another run)")
     return (f"{missing.size} of {frame_keys.size} frames have no CV-log record at their {unit} (first: "
             f"frame {missing[0]} at {unit} {frame_keys[missing[0]]:g}); the log has {record_keys.size} "
-            f"records from {first:g} to {last:g}, {spacing}: " + "; ".join(why))
+            f"records from {unit} {first:g} to {last:g}, {spacing}: " + "; ".join(why))
 
 
 def record_index(record_steps, frame_steps) -> np.ndarray:
