@@ -14,6 +14,7 @@ from .errors import (
     GridBiasError,
     GridError,
     LockError,
+    OutputError,
     ParameterError,
 )
 from .grid import Grid
@@ -38,5 +39,6 @@ __all__ = [
     "LockError",
     "CVLogError",
     "BlownUpError",
+    "OutputError",
     "__version__",
 ]

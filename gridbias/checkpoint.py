@@ -26,35 +26,25 @@ The file is exactly ``64 + K + P`` bytes long. To read one with NumPy alone::
     meta = json.loads(bytes(npz["__meta__"]).decode("utf-8"))
     arrays = {name: npz[name] for name in npz.files if name != "__meta__"}
 
-Writes are atomic: the file is written to a temporary file ``<name>.tmp-<16 hex digits>`` in the same
-folder, flushed, fsynced, renamed over the target and the folder is fsynced. A crash at any moment leaves
-either the old or the new checkpoint (plus, after a hard kill, possibly a stray temporary file, which
-`CheckpointLock` removes when it is next acquired).
+Writes are atomic (``gridbias._files.write_atomically``): a crash at any moment leaves either the old or
+the new checkpoint. `CheckpointLock` (defined with the other file plumbing in ``gridbias._files``) claims
+a checkpoint path for one run.
 """
 
 from __future__ import annotations
 
-import errno
 import hashlib
 import io
 import json
-import math
 import os
 import re
-import secrets
-import socket
 import struct
-import time
 import zipfile
 
 import numpy as np
 
-from .errors import CheckpointError, LockError, ParameterError
-
-try:
-    import fcntl
-except ImportError:  # Windows: checkpoints work, CheckpointLock raises LockError when used
-    fcntl = None
+from ._files import CheckpointLock, describe_foreign, encode_json, reason, write_atomically
+from .errors import CheckpointError, ParameterError
 
 __all__ = [
     "MAGIC",
@@ -76,135 +66,6 @@ _KIND_RE = re.compile(r"[A-Za-z0-9_.\-]+")
 _NAME_RE = re.compile(r"(?!__)[A-Za-z0-9_][A-Za-z0-9_.\-]{0,199}")
 _ARRAY_KINDS = "biufc"  # bool, signed, unsigned, float, complex
 _ZIP_DATE = (1980, 1, 1, 0, 0, 0)  # fixed member timestamps: same content, same bytes
-_MAX_JSON_DEPTH = 100
-
-# Leading bytes of files people may hand us by mistake, to say what the file is instead.
-_FOREIGN_SIGNATURES = (
-    (b"\x89GRIDBIAS CVLG\r\n", "a gridbias CV log (read it with gridbias.cvlog.read_cvlog)"),
-    (b"PK\x03\x04", "a ZIP archive (for example a plain NumPy .npz file)"),
-    (b"\x93NUMPY", "a NumPy .npy file"),
-    (b"\x89PNG", "a PNG image"),
-    (b"\x80", "a Python pickle (it was not unpickled)"),
-)
-
-
-# --------------------------------------------------------------------------------------------------- helpers
-def _encode_json(value, what: str) -> bytes:
-    """Validate `value` and return its UTF-8 JSON, refusing anything JSON cannot hold exactly.
-
-    Allowed: dict with str keys, list, tuple (read back as list), str, int, finite float, bool, None.
-    Raises ParameterError naming the offending entry (e.g. ``meta['walls'][0]['k'] = nan``).
-    """
-    _check_json(value, what, 0)
-    return json.dumps(value, ensure_ascii=False, allow_nan=False).encode("utf-8")
-
-
-def _check_json(value, where: str, depth: int) -> None:
-    if depth > _MAX_JSON_DEPTH:
-        raise ParameterError(f"{where} is nested deeper than {_MAX_JSON_DEPTH} levels (circular?)")
-    if value is None or isinstance(value, (bool, str, int)):
-        return
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            raise ParameterError(
-                f"{where} = {value!r}: JSON has no NaN or infinity; store non-finite numbers in an array"
-            )
-        return
-    if isinstance(value, (list, tuple)):
-        for i, item in enumerate(value):
-            _check_json(item, f"{where}[{i}]", depth + 1)
-        return
-    if isinstance(value, dict):
-        for key, item in value.items():
-            if not isinstance(key, str):
-                raise ParameterError(f"{where} has key {key!r} ({type(key).__name__}); keys must be str")
-            _check_json(item, f"{where}[{key!r}]", depth + 1)
-        return
-    raise ParameterError(
-        f"{where} has type {type(value).__name__}, which JSON cannot hold exactly; allowed: dict (str keys), "
-        "list, tuple, str, int, float, bool, None (convert NumPy scalars with int()/float()/bool())"
-    )
-
-
-def _describe_foreign(head: bytes) -> str:
-    """Say what a file starting with `head` looks like, for error messages ('' when unknown)."""
-    for signature, description in _FOREIGN_SIGNATURES:
-        if head.startswith(signature):
-            return f"; it looks like {description}"
-    return ""
-
-
-def _write_atomically(path: str, chunks, what: str) -> None:
-    """Write the byte chunks to `path` through a fsynced temporary file and an atomic rename.
-
-    On any failure the temporary file is removed, an existing file at `path` is left untouched and a
-    CheckpointError naming `what`, the path and the cause is raised (chained from the OSError).
-    """
-    folder = os.path.dirname(os.path.abspath(path))
-    tmp = None
-    try:
-        fd, tmp = _create_temp(path)
-        try:
-            for chunk in chunks:
-                _write_all(fd, chunk)
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        os.replace(tmp, path)
-        tmp = None
-    except OSError as exc:
-        raise CheckpointError(f"could not write {what} {path!r}: {_reason(exc)}") from exc
-    finally:
-        if tmp is not None:
-            try:
-                os.unlink(tmp)
-            except FileNotFoundError:
-                pass
-    try:
-        _fsync_directory(folder)
-    except OSError as exc:
-        raise CheckpointError(
-            f"wrote {what} {path!r}, but could not sync its folder, so the rename may not survive a power "
-            f"failure: {_reason(exc)}"
-        ) from exc
-
-
-def _create_temp(path: str, flags: int = os.O_WRONLY):
-    """Create and open ``<path>.tmp-<16 hex>`` exclusively (permissions from the umask); return (fd, name)."""
-    while True:
-        tmp = f"{path}.tmp-{secrets.token_hex(8)}"
-        try:
-            return os.open(tmp, flags | os.O_CREAT | os.O_EXCL, 0o666), tmp
-        except FileExistsError:
-            continue
-
-
-def _write_all(fd: int, data) -> None:
-    view = memoryview(data).cast("B")
-    while view:
-        written = os.write(fd, view)
-        view = view[written:]
-
-
-def _fsync_directory(folder: str) -> None:
-    """Make a rename in `folder` durable (POSIX); skipped where folders cannot be synced (EINVAL)."""
-    if os.name == "nt":
-        return
-    fd = os.open(folder, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    try:
-        os.fsync(fd)
-    except OSError as exc:
-        if exc.errno != errno.EINVAL:
-            raise
-    finally:
-        os.close(fd)
-
-
-def _reason(exc: OSError) -> str:
-    if exc.errno is not None:
-        return f"{exc.strerror or os.strerror(exc.errno)} (errno {errno.errorcode.get(exc.errno, exc.errno)})"
-    return str(exc)
-
 
 # ---------------------------------------------------------------------------------------------- write/read
 def write_checkpoint(path, meta: dict, arrays: dict, *, kind: str) -> None:
@@ -250,14 +111,14 @@ def write_checkpoint(path, meta: dict, arrays: dict, *, kind: str) -> None:
     kind_bytes = _check_kind(kind)
     if not isinstance(meta, dict):
         raise ParameterError(f"meta must be a dict, got {type(meta).__name__}")
-    meta_bytes = _encode_json(meta, "meta")
+    meta_bytes = encode_json(meta, "meta")
     payload = _build_payload(meta_bytes, _check_arrays(arrays))
     head = MAGIC + struct.pack("<IIQ", FORMAT_VERSION, len(kind_bytes), len(payload))
     digest = hashlib.sha256(head)
     digest.update(kind_bytes)
     digest.update(payload)
     header = _HEADER.pack(MAGIC, FORMAT_VERSION, len(kind_bytes), len(payload), digest.digest())
-    _write_atomically(path, (header, kind_bytes, payload), "checkpoint")
+    write_atomically(path, (header, kind_bytes, payload), what="checkpoint", error=CheckpointError)
 
 
 def _check_kind(kind) -> bytes:
@@ -342,7 +203,7 @@ def read_checkpoint(path, *, kind: str | None = None) -> tuple[dict, dict]:
     except FileNotFoundError as exc:
         raise CheckpointError(f"checkpoint file {path!r} does not exist") from exc
     except OSError as exc:
-        raise CheckpointError(f"could not read checkpoint {path!r}: {_reason(exc)}") from exc
+        raise CheckpointError(f"could not read checkpoint {path!r}: {reason(exc)}") from exc
     payload_len = _HEADER.unpack(head)[3]
     digest = hashlib.sha256(head[:32])
     digest.update(stored_kind.encode("ascii"))
@@ -363,7 +224,7 @@ def _check_header(path: str, head: bytes, size: int) -> int:
     n = min(len(head), len(MAGIC))
     if head[:n] != MAGIC[:n]:
         raise CheckpointError(
-            f"{path!r} is not a gridbias checkpoint (wrong magic bytes){_describe_foreign(head)}"
+            f"{path!r} is not a gridbias checkpoint (wrong magic bytes){describe_foreign(head)}"
         )
     if len(head) < HEADER_SIZE:
         raise CheckpointError(
@@ -431,146 +292,3 @@ def _parse_payload(path: str, payload: bytes) -> tuple[dict, dict]:
 
 def _refuse_constant(name: str):
     raise ValueError(f"JSON constant {name} is not allowed")
-
-
-# ------------------------------------------------------------------------------------------------------ lock
-class CheckpointLock:
-    """Exclusive claim on a checkpoint path, so that two runs never write the same checkpoint.
-
-    The claim is a POSIX ``flock`` on the sidecar file ``<path>.lock``, which holds the holder's pid,
-    host name and start time as JSON. The kernel drops the flock when the holder exits or is killed, so a
-    lock file left by a dead process is taken over silently (its old content is kept in
-    `previous_holder`). While the lock is held, stray temporary files of `path` left by killed writers
-    (``<path>.tmp-<16 hex digits>``) are removed.
-
-    Parameters
-    ----------
-    path : str or os.PathLike
-        The checkpoint path to claim (it need not exist yet; its folder must).
-
-    Attributes
-    ----------
-    path, lock_path : str
-        The checkpoint path and its lock file.
-    previous_holder : dict or None
-        After `acquire`: ``{"pid", "host", "since"}`` read from a lock file left by a process that died
-        holding it, else None.
-
-    Notes
-    -----
-    Use it as a context manager, or call `acquire` / `release`. A second lock on the same path fails with
-    LockError whether it is in another process or in this one. ``flock`` protects processes on one host;
-    on network file systems it may not reach other hosts. The lock file is removed on `release`.
-
-    Examples
-    --------
-    >>> import os, tempfile
-    >>> path = os.path.join(tempfile.mkdtemp(), "run.gbz")
-    >>> with CheckpointLock(path):  # doctest: +ELLIPSIS
-    ...     CheckpointLock(path).acquire()
-    Traceback (most recent call last):
-    ...
-    gridbias.errors.LockError: checkpoint ... is in use by process ...
-    """
-
-    def __init__(self, path):
-        self.path = os.fspath(path)
-        self.lock_path = self.path + ".lock"
-        self.previous_holder = None
-        self._fd = None
-
-    @property
-    def held(self) -> bool:
-        """True while this object holds the lock."""
-        return self._fd is not None
-
-    def acquire(self) -> "CheckpointLock":
-        """Claim the path; raise LockError naming the holder (pid, host) if another one holds it."""
-        if fcntl is None:
-            raise LockError("CheckpointLock needs POSIX file locking (fcntl), which this platform lacks")
-        if self._fd is not None:
-            raise LockError(f"this CheckpointLock already holds {self.lock_path!r}")
-        while True:
-            try:
-                fd = os.open(self.lock_path, os.O_RDWR | os.O_CREAT, 0o666)
-            except OSError as exc:
-                raise CheckpointError(
-                    f"could not create lock file {self.lock_path!r}: {_reason(exc)}"
-                ) from exc
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except BlockingIOError:
-                holder = _read_holder(fd)
-                os.close(fd)
-                raise LockError(self._held_message(holder)) from None
-            except OSError as exc:
-                os.close(fd)
-                raise CheckpointError(f"could not lock {self.lock_path!r}: {_reason(exc)}") from exc
-            # The previous holder may have released (and unlinked) the file between our open and flock:
-            # then we locked an orphan and must start again on the current file.
-            try:
-                same = os.path.samestat(os.fstat(fd), os.stat(self.lock_path))
-            except FileNotFoundError:
-                same = False
-            if same:
-                break
-            os.close(fd)
-        self.previous_holder = _read_holder(fd)
-        record = {"pid": os.getpid(), "host": socket.gethostname(),
-                  "since": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
-        try:
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, json.dumps(record).encode("utf-8") + b"\n", 0)
-        except OSError as exc:
-            os.close(fd)
-            raise CheckpointError(f"could not write lock file {self.lock_path!r}: {_reason(exc)}") from exc
-        self._fd = fd
-        self._remove_stray_temp_files()
-        return self
-
-    def release(self) -> None:
-        """Give the path up and remove the lock file (no-op when not held)."""
-        if self._fd is None:
-            return
-        try:
-            os.unlink(self.lock_path)  # while still locked, so nobody can lock this file in between
-        except FileNotFoundError:
-            pass
-        finally:
-            os.close(self._fd)
-            self._fd = None
-
-    def __enter__(self) -> "CheckpointLock":
-        return self.acquire()
-
-    def __exit__(self, *exc_info) -> None:
-        self.release()
-
-    def _held_message(self, holder) -> str:
-        if holder is None:
-            who = "another process (which has not recorded its id yet)"
-        else:
-            who = f"process {holder.get('pid')} on host {holder.get('host')!r} (since {holder.get('since')})"
-        return (
-            f"checkpoint {self.path!r} is in use by {who}; lock file {self.lock_path!r}. Stop that run or "
-            "use another checkpoint path"
-        )
-
-    def _remove_stray_temp_files(self) -> None:
-        folder, base = os.path.split(os.path.abspath(self.path))
-        pattern = re.compile(re.escape(base) + r"\.tmp-[0-9a-f]{16}")
-        for name in os.listdir(folder):
-            if pattern.fullmatch(name):
-                try:
-                    os.unlink(os.path.join(folder, name))
-                except FileNotFoundError:
-                    pass
-
-
-def _read_holder(fd: int):
-    """The holder record in a lock file, or None when it is empty or unreadable."""
-    try:
-        record = json.loads(os.pread(fd, 4096, 0).decode("utf-8"))
-    except (OSError, ValueError):
-        return None
-    return record if isinstance(record, dict) else None

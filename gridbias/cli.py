@@ -291,18 +291,11 @@ def _check_outputs(paths, allowed, option):
 
 
 def write_atomically(path, data: bytes) -> None:
-    """Write ``data`` to ``path`` through a temporary file and a rename (an old file survives a failure)."""
-    tmp = f"{path}.tmp-{os.getpid()}"
-    try:
-        with open(tmp, "wb") as f:
-            f.write(data)
-        os.replace(tmp, path)
-    except OSError as exc:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise CommandError(f"could not write {path!r}: {exc.strerror or exc}", EXIT_FAILED) from exc
+    """Write ``data`` to ``path`` atomically (an old file survives a failure); OutputError if it fails."""
+    from ._files import write_atomically as write
+    from .errors import OutputError
+
+    write(path, data, what="file", error=OutputError)
 
 
 def _csv_bytes(header, columns) -> bytes:

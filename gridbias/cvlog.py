@@ -41,14 +41,8 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .checkpoint import MAGIC as CHECKPOINT_MAGIC
-from .checkpoint import _create_temp, _describe_foreign, _encode_json, _fsync_directory, _reason, _write_all
-from .errors import CVLogError, LockError, ParameterError
-
-try:
-    import fcntl
-except ImportError:  # Windows: logs work, but a second writer is not detected
-    fcntl = None
+from ._files import AtomicFile, describe_foreign, encode_json, lock_open_file, reason, write_all
+from .errors import CVLogError, ParameterError
 
 __all__ = ["MAGIC", "FORMAT_VERSION", "HEADER_SIZE", "CVLog", "CVLogWriter", "read_cvlog"]
 
@@ -156,7 +150,7 @@ def read_cvlog(path, *, mmap: bool = False) -> CVLog:
     except FileNotFoundError as exc:
         raise CVLogError(f"CV log {path!r} does not exist") from exc
     except OSError as exc:
-        raise CVLogError(f"could not read CV log {path!r}: {_reason(exc)}") from exc
+        raise CVLogError(f"could not read CV log {path!r}: {reason(exc)}") from exc
     data.flags.writeable = False
     n_partial = size - header.data_offset - n * 8 * m
     return CVLog(path, header.columns, header.units, header.metadata, data, max(n_partial, 0))
@@ -170,11 +164,7 @@ def _read_header(fd: int, path: str) -> _Header:
         raise CVLogError(f"CV log {path!r} is empty (0 bytes)")
     k = min(len(head), len(MAGIC))
     if head[:k] != MAGIC[:k]:
-        if head.startswith(CHECKPOINT_MAGIC):
-            looks = "; it is a gridbias checkpoint (read it with gridbias.checkpoint.read_checkpoint)"
-        else:
-            looks = _describe_foreign(head)
-        raise CVLogError(f"{path!r} is not a gridbias CV log (wrong magic bytes){looks}")
+        raise CVLogError(f"{path!r} is not a gridbias CV log (wrong magic bytes){describe_foreign(head)}")
     if len(head) < HEADER_SIZE:
         raise CVLogError(
             f"CV log {path!r} is truncated: {size} bytes, shorter than the {HEADER_SIZE}-byte header"
@@ -298,7 +288,7 @@ class CVLogWriter:
         if metadata is not None:
             if not isinstance(metadata, dict):
                 raise ParameterError(f"metadata must be a dict or None, got {type(metadata).__name__}")
-            metadata = json.loads(_encode_json(metadata, "metadata"))  # as it will read back
+            metadata = json.loads(encode_json(metadata, "metadata"))  # as it will read back
         self._record_size = 8 * len(self.columns)
         self._fd = None
         self.dropped_partial_bytes = 0
@@ -338,13 +328,13 @@ class CVLogWriter:
         if array.shape[0] == 0:
             return
         try:
-            _write_all(fd, np.ascontiguousarray(array, dtype=_RECORD_DTYPE))
+            write_all(fd, np.ascontiguousarray(array, dtype=_RECORD_DTYPE))
         except OSError as exc:
             try:
                 os.ftruncate(fd, self._data_offset + self._n_records * self._record_size)
             except OSError:
                 self._close_quietly()  # cannot restore record alignment: refuse further writes
-            raise CVLogError(f"could not append to CV log {self.path!r}: {_reason(exc)}") from exc
+            raise CVLogError(f"could not append to CV log {self.path!r}: {reason(exc)}") from exc
         self._n_records += array.shape[0]
 
     def flush(self) -> None:
@@ -353,7 +343,7 @@ class CVLogWriter:
         try:
             os.fsync(fd)
         except OSError as exc:
-            raise CVLogError(f"could not flush CV log {self.path!r}: {_reason(exc)}") from exc
+            raise CVLogError(f"could not flush CV log {self.path!r}: {reason(exc)}") from exc
 
     def close(self) -> None:
         """Flush and close (idempotent)."""
@@ -403,7 +393,7 @@ class CVLogWriter:
                 os.ftruncate(fd, self._data_offset + first_drop * self._record_size)
                 n_kept = first_drop
         except OSError as exc:
-            raise CVLogError(f"could not truncate CV log {self.path!r}: {_reason(exc)}") from exc
+            raise CVLogError(f"could not truncate CV log {self.path!r}: {reason(exc)}") from exc
         self._n_records = n_kept
         return n - n_kept
 
@@ -428,35 +418,18 @@ class CVLogWriter:
         os.close(fd)
 
     def _header_bytes(self, metadata: dict) -> bytes:
-        text = _encode_json({"columns": list(self.columns), "units": list(self.units), "metadata": metadata},
+        text = encode_json({"columns": list(self.columns), "units": list(self.units), "metadata": metadata},
                             "the CV log header")
         padded = text + b"\x00" * (-len(text) % 8)
         head = MAGIC + struct.pack("<IIQ", FORMAT_VERSION, len(self.columns), len(text))
         return head + hashlib.sha256(head + padded).digest() + padded
 
     def _create(self, metadata: dict) -> None:
-        """Create the file with its header atomically (a crash leaves no file or a complete header)."""
-        tmp = None
-        try:
-            fd, tmp = _create_temp(self.path)
-            try:
-                _write_all(fd, self._header_bytes(metadata))
-                os.fsync(fd)
-            finally:
-                os.close(fd)
-            try:
-                os.link(tmp, self.path)  # unlike a rename, never replaces a log created meanwhile
-            except FileExistsError:
-                pass
-            _fsync_directory(os.path.dirname(os.path.abspath(self.path)))
-        except OSError as exc:
-            raise CVLogError(f"could not create CV log {self.path!r}: {_reason(exc)}") from exc
-        finally:
-            if tmp is not None:
-                try:
-                    os.unlink(tmp)
-                except FileNotFoundError:
-                    pass
+        """Create the file with its header atomically (a crash leaves no file or a complete header).
+
+        Unlike a rename, the final link never replaces a log another writer created meanwhile."""
+        with AtomicFile(self.path, what="CV log", error=CVLogError, verb="create", replace=False) as f:
+            f.write(self._header_bytes(metadata))
 
     def _open(self, metadata) -> None:
         """Open the existing file for appending, lock it, check its header and cut a partial record."""
@@ -464,7 +437,7 @@ class CVLogWriter:
             try:
                 fd = os.open(self.path, os.O_RDWR | os.O_APPEND)
             except OSError as exc:
-                raise CVLogError(f"could not open CV log {self.path!r}: {_reason(exc)}") from exc
+                raise CVLogError(f"could not open CV log {self.path!r}: {reason(exc)}") from exc
             try:
                 _lock(fd, self.path)
                 same = os.path.samestat(os.fstat(fd), os.stat(self.path))
@@ -485,7 +458,7 @@ class CVLogWriter:
                 os.ftruncate(fd, header.data_offset + body - partial)
         except OSError as exc:
             os.close(fd)
-            raise CVLogError(f"could not open CV log {self.path!r}: {_reason(exc)}") from exc
+            raise CVLogError(f"could not open CV log {self.path!r}: {reason(exc)}") from exc
         except BaseException:
             os.close(fd)
             raise
@@ -514,31 +487,23 @@ class CVLogWriter:
             )
 
     def _rewrite_keeping(self, records: np.ndarray, j: int, value: float) -> int:
-        """Write the records with column j <= value (or NaN) to a new file that replaces the log."""
+        """Write the records with column j <= value (or NaN) to a new file that replaces the log.
+
+        The new file is locked before it is put in place, so no other writer can claim it in between."""
         header = os.pread(self._fd, self._data_offset, 0)
-        new_fd, tmp = _create_temp(self.path, os.O_RDWR | os.O_APPEND)
         n_kept = 0
-        try:
-            os.fchmod(new_fd, stat.S_IMODE(os.fstat(self._fd).st_mode))
-            _lock(new_fd, tmp)
-            _write_all(new_fd, header)
+        with AtomicFile(self.path, what="CV log", error=CVLogError, verb="truncate",
+                        flags=os.O_RDWR | os.O_APPEND, keep_open=True) as f:
+            os.fchmod(f.fd, stat.S_IMODE(os.fstat(self._fd).st_mode))
+            _lock(f.fd, self.path)
+            f.write(header)
             for start in range(0, records.shape[0], _SCAN_ROWS):
                 block = np.asarray(records[start:start + _SCAN_ROWS])
                 kept = np.ascontiguousarray(block[~(block[:, j] > value)])
-                _write_all(new_fd, kept)
+                f.write(kept)
                 n_kept += kept.shape[0]
-            os.fsync(new_fd)
-            os.replace(tmp, self.path)
-            tmp = None
-            _fsync_directory(os.path.dirname(os.path.abspath(self.path)))
-        except BaseException:
-            os.close(new_fd)
-            raise
-        finally:
-            if tmp is not None:
-                os.unlink(tmp)
-        os.close(self._fd)  # the new file is locked through new_fd already
-        self._fd = new_fd
+        os.close(self._fd)  # the new file is locked through its own descriptor already
+        self._fd = f.fd
         return n_kept
 
 
@@ -547,11 +512,5 @@ _MISSING = object()
 
 def _lock(fd: int, path: str) -> None:
     """Hold an exclusive flock on the open log; LockError if another writer holds it."""
-    if fcntl is None:
-        return
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        raise LockError(
-            f"CV log {path!r} is already open for writing by another writer (in this or another process)"
-        ) from None
+    lock_open_file(fd, f"CV log {path!r} is already open for writing by another writer (in this or another "
+                       "process)")

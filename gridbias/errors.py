@@ -8,6 +8,7 @@ __all__ = [
     "LockError",
     "CVLogError",
     "BlownUpError",
+    "OutputError",
 ]
 
 
@@ -37,3 +38,7 @@ class CVLogError(GridBiasError, ValueError):
 
 class BlownUpError(GridBiasError, RuntimeError):
     """The simulation produced non-finite positions, velocities or CV values; nothing was deposited or saved."""
+
+
+class OutputError(GridBiasError, OSError):
+    """A result file (a table, a figure, a report) that could not be written; an older file there is intact."""

@@ -40,6 +40,7 @@ mm = pytest.importorskip("openmm")
 from openmm import app  # noqa: E402
 
 import gridbias as gb  # noqa: E402
+import gridbias._files as gbf  # noqa: E402
 import gridbias.checkpoint as gbc  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
 from gridbias.checkpoint import read_checkpoint, write_checkpoint  # noqa: E402
@@ -151,12 +152,12 @@ def test_soak_checkpoint_grows_by_the_history_only_and_log_by_fixed_records(tmp_
 
 # ------------------------------------------------------------------------------------ disk full, I/O errors
 class FailingWrites:
-    """Replaces gridbias.checkpoint's chunk writer: while armed, half a chunk lands, then ENOSPC."""
+    """Replaces the atomic writer's chunk writer (gridbias._files): while armed, half a chunk lands, then ENOSPC."""
 
     def __init__(self, monkeypatch):
         self.armed = 0  # number of checkpoint writes still to fail
         self.failed = 0
-        real = gbc._write_all
+        real = gbf.write_all
 
         def write_all(fd, data):
             if self.armed:
@@ -167,7 +168,7 @@ class FailingWrites:
                 raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
             return real(fd, data)
 
-        monkeypatch.setattr(gbc, "_write_all", write_all)
+        monkeypatch.setattr(gbf, "write_all", write_all)
 
 
 def test_failed_checkpoint_is_logged_and_retried(tmp_path, monkeypatch, caplog):

@@ -19,7 +19,7 @@ mm = pytest.importorskip("openmm")
 
 import gridbias as gb  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
-from gridbias._openmm_forces import TableLayout  # noqa: E402
+from gridbias.openmm.forces import TableLayout  # noqa: E402
 
 pytestmark = [pytest.mark.openmm, pytest.mark.filterwarnings("ignore:axis .* coarser than sigma/2")]
 

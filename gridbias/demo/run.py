@@ -49,7 +49,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from ..checkpoint import CheckpointLock
+from .._files import CheckpointLock, fsync_path
 from ..errors import CheckpointError, LockError, ParameterError
 
 __all__ = ["DemoSettings", "DemoResult", "run_demo", "CONFORMERS", "SUBFOLDERS", "FULL_LENGTH_NS",
@@ -182,17 +182,6 @@ def _remove_own_files(folder):
             os.unlink(path)
 
 
-def _fsync_file(path):
-    """Make what was written to ``path`` (through any descriptor) durable; nothing if it does not exist."""
-    if not os.path.exists(path):
-        return
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 class _StopRequest:
     """SIGINT/SIGTERM handler: the first signal asks the loop to stop at the next chunk; a second one
     stops at once (KeyboardInterrupt)."""
@@ -245,11 +234,13 @@ class _FrameLog:
         return {"steps": steps, "periodic": False, "include": ["positions"]}
 
     def report(self, simulation, state):
+        from ..openmm._units import in_md_units
         from .dipeptide import dihedral_angles
 
-        phi, psi = dihedral_angles(state.getPositions(asNumpy=True)._value, self._quads)
+        phi, psi = dihedral_angles(in_md_units(state.getPositions(asNumpy=True)), self._quads)
         energy, _ = self._link.bias.evaluate([phi])
-        self._writer.write([float(simulation.currentStep), float(state.getTime()._value), phi, psi, energy])
+        self._writer.write([float(simulation.currentStep), float(in_md_units(state.getTime())), phi, psi,
+                            energy])
 
     def restored(self, step):
         self._writer.truncate_after(step)
@@ -368,7 +359,7 @@ def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream
         # The frames logged so far reach the disk before the checkpoint that matches them (as the
         # adapter's reporter does before each of its checkpoints); the reporter keeps the checkpoint
         # locked until the final one is written.
-        _fsync_file(os.path.join(os.path.dirname(checkpoint), FRAMES))
+        fsync_path(os.path.join(os.path.dirname(checkpoint), FRAMES))
         link.save(simulation, checkpoint)
         reporter.close()
         if frame_log is not None:

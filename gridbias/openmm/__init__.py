@@ -38,13 +38,14 @@ import warnings
 
 import numpy as np
 
-from . import _openmm_cvs as _cvs
-from ._openmm_forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
-from ._openmm_link import CHECKPOINT_KIND, DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
-from .bias import GridBias
-from .errors import ParameterError
-from .grid import Grid
-from .walls import Wall
+from ..bias import GridBias
+from ..errors import ParameterError
+from ..grid import Grid
+from ..walls import Wall
+from . import cvs as _cvs
+from ._units import cv_unit_name, in_md_units, is_quantity, per_cv
+from .forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
+from .link import CHECKPOINT_KIND, DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
 
 __all__ = [
     "distance",
@@ -75,50 +76,6 @@ DEFAULT_FORCE_GROUP = 31
 #: and Reference platforms for strides of 250-1000 steps (bench/README.md). On GPUs, where c is tiny,
 #: a larger K pays.
 DEFAULT_PENDING_HILLS = 4
-
-
-
-def _is_quantity(x) -> bool:
-    return hasattr(x, "value_in_unit") and hasattr(x, "unit")
-
-
-def _in_unit(name, value, unit_name):
-    """A float in OpenMM's default unit ``unit_name`` ('nanometer', 'radian', ...); quantities converted."""
-    if _is_quantity(value):
-        from openmm import unit
-
-        target = getattr(unit, unit_name)
-        if not value.unit.is_compatible(target):
-            raise ParameterError(f"{name} must be in units compatible with {unit_name}, got {value}")
-        return float(value.value_in_unit(target))
-    try:
-        return float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} must be a number ({unit_name}) or an openmm.unit quantity, "
-                             f"got {value!r}") from None
-
-
-def _cv_unit_name(cv):
-    return {"nm": "nanometer", "rad": "radian"}.get(cv.unit)
-
-
-def _per_cv(name, values, cvs):
-    """Convert a per-CV sequence (CV units) to floats; each entry may be a quantity."""
-    if _is_quantity(values):  # a quantity wrapping a list
-        values = [values.unit * v for v in values._value] if hasattr(values._value, "__len__") else [values]
-    seq = list(values) if hasattr(values, "__len__") else [values]
-    if len(seq) != len(cvs):
-        raise ParameterError(f"{name} must have {len(cvs)} entries (one per CV), got {len(seq)}")
-    out = []
-    for i, (v, cv) in enumerate(zip(seq, cvs)):
-        unit_name = _cv_unit_name(cv)
-        if unit_name is None:
-            if _is_quantity(v):
-                raise ParameterError(f"{name}[{i}]: CV {i} has unit {cv.unit!r}; give a bare number")
-            out.append(float(v))
-        else:
-            out.append(_in_unit(f"{name}[{i}]", v, unit_name))
-    return out
 
 
 # ---------------------------------------------------------------------------------------------- CV builders
@@ -190,7 +147,7 @@ def make_bias(cvs, *, lower, upper, bins, sigma, height, temperature, bias_facto
     GridBias
     """
     cvs = list(cvs)
-    grid = Grid(_per_cv("lower", lower, cvs), _per_cv("upper", upper, cvs), bins,
+    grid = Grid(per_cv("lower", lower, cvs), per_cv("upper", upper, cvs), bins,
                 [bool(cv.periodic) for cv in cvs])
     converted = []
     for w in walls:
@@ -199,18 +156,19 @@ def make_bias(cvs, *, lower, upper, bins, sigma, height, temperature, bias_facto
             continue
         spec = dict(w)
         cv = cvs[int(spec["cv"])]
-        unit_name = _cv_unit_name(cv) or "dimensionless"
-        spec["bound"] = _in_unit("wall bound", spec["bound"], unit_name) if unit_name != "dimensionless" \
-            else float(spec["bound"])
-        if _is_quantity(spec["k"]):
+        unit_name = cv_unit_name(cv) or "dimensionless"
+        spec["bound"] = in_md_units(spec["bound"], name="wall bound", unit=unit_name) \
+            if unit_name != "dimensionless" else float(spec["bound"])
+        if is_quantity(spec["k"]):
             from openmm import unit
 
             power = float(spec.get("power", 2.0))
             per = getattr(unit, unit_name) ** power if unit_name != "dimensionless" else unit.dimensionless
             spec["k"] = float(spec["k"].value_in_unit(unit.kilojoule_per_mole / per))
         converted.append(Wall(**spec))
-    return GridBias(grid, _per_cv("sigma", sigma, cvs), _in_unit("height", height, "kilojoule_per_mole"),
-                    _in_unit("temperature", temperature, "kelvin"), bias_factor, converted)
+    return GridBias(grid, per_cv("sigma", sigma, cvs),
+                    in_md_units(height, name="height", unit="kilojoule_per_mole"),
+                    in_md_units(temperature, name="temperature", unit="kelvin"), bias_factor, converted)
 
 
 # ------------------------------------------------------------------------------------------------ attach

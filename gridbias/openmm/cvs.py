@@ -1,5 +1,6 @@
-"""Collective-variable definitions for the OpenMM adapter (private; users call the builders in
-``gridbias.openmm``).
+"""The OpenMM adapter's collective variables: how the engine computes each one, how NumPy does, what it is.
+
+Users make CVs with the builders in ``gridbias.openmm``; the classes here are what those return.
 
 Each CV knows three things: how OpenMM computes it (an expression over the "points" of one bond of a
 custom force, or an inner force of a CustomCVForce), how to compute the same number from a positions
@@ -22,7 +23,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import ParameterError
+from ..errors import ParameterError
+from ._units import in_md_units
 
 __all__ = [
     "CollectiveVariable",
@@ -137,6 +139,11 @@ class CollectiveVariable:
         """A copy with everything that depends on the System filled in (centroid masses)."""
         return self
 
+    def single_force(self, openmm):
+        """A standard OpenMM force whose energy is this CV (an inner force of a CustomCVForce), or None
+        when the CV is computed by the generic bond-force expression (``expression``) instead."""
+        return None
+
     def describe(self) -> dict:
         """JSON-safe definition; equal definitions mean the same CV."""
         raise NotImplementedError
@@ -169,6 +176,11 @@ class Distance(CollectiveVariable):
         d = _diff(p, q, _box_tuple(box))
         return math.sqrt(_dot(d, d))
 
+    def single_force(self, openmm):
+        force = openmm.CustomBondForce("r")
+        force.addBond(*self.atoms, [])
+        return force
+
     def describe(self):
         return {"kind": "distance", "atoms": list(self.atoms)}
 
@@ -200,6 +212,11 @@ class Angle(CollectiveVariable):
         u, v = _diff(p1, p0, box), _diff(p1, p2, box)
         cos = _dot(u, v) / math.sqrt(_dot(u, u) * _dot(v, v))
         return math.acos(min(1.0, max(-1.0, cos)))
+
+    def single_force(self, openmm):
+        force = openmm.CustomAngleForce("theta")
+        force.addAngle(*self.atoms, [])
+        return force
 
     def describe(self):
         return {"kind": "angle", "atoms": list(self.atoms)}
@@ -235,6 +252,11 @@ class Dihedral(CollectiveVariable):
         b1, b2, b3 = _diff(p0, p1, box), _diff(p1, p2, box), _diff(p2, p3, box)
         c23 = _cross(b2, b3)
         return math.atan2(math.sqrt(_dot(b2, b2)) * _dot(b1, c23), _dot(_cross(b1, b2), c23))
+
+    def single_force(self, openmm):
+        force = openmm.CustomTorsionForce("theta")
+        force.addTorsion(*self.atoms, [])
+        return force
 
     def describe(self):
         return {"kind": "dihedral", "atoms": list(self.atoms)}
@@ -319,7 +341,7 @@ class CentroidDistance(CollectiveVariable):
             if given is not None:
                 w.append(given)
                 continue
-            masses = tuple(system.getParticleMass(a)._value for a in g)  # amu (OpenMM's default unit)
+            masses = tuple(float(in_md_units(system.getParticleMass(a))) for a in g)  # dalton
             if sum(masses) <= 0:
                 raise ParameterError(
                     f"centroid_distance {label} {list(g)} has total mass 0 (massless particles); "
@@ -424,6 +446,9 @@ class ForceCV(CollectiveVariable):
         import openmm
 
         return openmm.XmlSerializer.serialize(self.force)
+
+    def single_force(self, openmm):
+        return openmm.XmlSerializer.deserialize(self.serialized())  # a copy: the caller's force stays out
 
     def describe(self):
         digest = hashlib.sha256(self.serialized().encode("utf-8")).hexdigest()

@@ -1,5 +1,7 @@
-"""The run-time side of the OpenMM adapter (private; built by ``gridbias.openmm.attach``): reading CVs,
-depositing, keeping the engine's copy of the bias in step, checkpoints and the reporter."""
+"""The OpenMM adapter at run time: BiasLink (CVs, deposits, engine in step, save/restore) and BiasReporter.
+
+Both are made by ``gridbias.openmm.attach`` and ``BiasLink.reporter``; the layout of the run checkpoint
+they write and read is :mod:`gridbias.runs`'s."""
 
 from __future__ import annotations
 
@@ -12,9 +14,10 @@ import weakref
 
 import numpy as np
 
-from ._openmm_forces import require_openmm, same_object
-from .bias import GridBias
-from .errors import BlownUpError, CheckpointError, CVLogError, ParameterError
+from ..bias import GridBias
+from ..errors import BlownUpError, CheckpointError, CVLogError, ParameterError
+from ._units import in_md_units
+from .forces import require_openmm, same_object
 
 __all__ = ["BiasLink", "BiasReporter", "CHECKPOINT_KIND", "DEFAULT_MAX_CHECKPOINT_FAILURES"]
 
@@ -81,9 +84,9 @@ class BiasLink:
         if any(cv.geometric for cv in self.cvs):
             if state is None:
                 state = context.getState(getPositions=True)
-            pos_n3 = np.asarray(state.getPositions(asNumpy=True)._value)
+            pos_n3 = np.asarray(in_md_units(state.getPositions(asNumpy=True)))
             if self._periodic_box:
-                box = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value)
+                box = np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)))
         s = np.empty(len(self.cvs))
         for i, cv in enumerate(self.cvs):
             if cv.geometric:
@@ -97,7 +100,7 @@ class BiasLink:
     def bias_energy(self, simulation) -> float:
         """The bias energy the engine applies now, kJ/mol (its force group's energy)."""
         state = _context_of(simulation).getState(getEnergy=True, groups={self.force_group})
-        return float(state.getPotentialEnergy()._value)
+        return float(in_md_units(state.getPotentialEnergy()))
 
     # -- engine state -----------------------------------------------------------------------------
     def _bind(self, context):
@@ -136,7 +139,7 @@ class BiasLink:
         if s is None:
             s = self.cv_values(context)
         if time is None:
-            time = float(context.getState().getTime()._value)
+            time = float(in_md_units(context.getState().getTime()))
         n_before = self._bias.n_hills
         h = self._bias.deposit(s, time=time)
         # Mirror every hill the call added: one normally, up to one per walker for a shared bias.
@@ -165,14 +168,14 @@ class BiasLink:
         The file (a gridbias.checkpoint container of kind ``CHECKPOINT_KIND``) is replaced atomically.
         Nothing is written when positions or velocities are not finite (the last good file stays).
         """
-        from .checkpoint import write_checkpoint
+        from ..checkpoint import write_checkpoint
 
         openmm = require_openmm()
         context = _context_of(simulation)
         self._bind(context)
         state = context.getState(getPositions=True, getVelocities=True)
-        positions = np.asarray(state.getPositions(asNumpy=True)._value, dtype=float)
-        velocities = np.asarray(state.getVelocities(asNumpy=True)._value, dtype=float)
+        positions = np.asarray(in_md_units(state.getPositions(asNumpy=True)), dtype=float)
+        velocities = np.asarray(in_md_units(state.getVelocities(asNumpy=True)), dtype=float)
         if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
             raise BlownUpError(f"positions or velocities are not finite at step {context.getStepCount()}: the "
                                 f"simulation has blown up; {os.fspath(path)!r} was not overwritten")
@@ -186,7 +189,7 @@ class BiasLink:
             "platform": context.getPlatform().getName(),
             "openmm_version": openmm.__version__,
             "step": int(context.getStepCount()),
-            "time_ps": float(state.getTime()._value),
+            "time_ps": float(in_md_units(state.getTime())),
             "engine": {"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
                        "n_pending": self._n_pending, "name": self.name},
             "written": _time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -196,7 +199,7 @@ class BiasLink:
         arrays["md.checkpoint"] = np.frombuffer(context.createCheckpoint(), dtype=np.uint8)
         arrays["md.positions"] = positions
         arrays["md.velocities"] = velocities
-        arrays["md.box"] = np.asarray(state.getPeriodicBoxVectors(asNumpy=True)._value, dtype=float)
+        arrays["md.box"] = np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float)
         write_checkpoint(path, meta, arrays, kind=CHECKPOINT_KIND)
 
     def restore(self, simulation, path) -> dict:
@@ -212,7 +215,7 @@ class BiasLink:
         -------
         dict : the checkpoint's metadata (step, time_ps, platform, ...).
         """
-        from .checkpoint import read_checkpoint
+        from ..checkpoint import read_checkpoint
 
         context = _context_of(simulation)
         meta, arrays = read_checkpoint(path, kind=CHECKPOINT_KIND)
@@ -366,7 +369,7 @@ class BiasReporter:
         self._writer = None
         self._lock = None
         if self.checkpoint is not None:
-            from .checkpoint import CheckpointLock
+            from ..checkpoint import CheckpointLock
 
             self._lock = CheckpointLock(self.checkpoint).acquire()
             self._finalizer = weakref.finalize(self, self._lock.release)
@@ -398,12 +401,12 @@ class BiasReporter:
         integrator = simulation.integrator
         if hasattr(integrator, "getTemperature"):
             t = integrator.getTemperature()
-            t = float(t._value) if hasattr(t, "_value") else float(t)
+            t = float(in_md_units(t))
             if not math.isclose(t, link.bias.temperature, rel_tol=1e-6):
                 warnings.warn(f"the integrator runs at {t} K but the bias was made for {link.bias.temperature} K; "
                               "well-tempered heights and free energies use the bias temperature", stacklevel=4)
         if self.log is not None:
-            from .cvlog import CVLogWriter
+            from ..cvlog import CVLogWriter
 
             labels = link.labels()
             columns = ["step", "time"] + labels + ["bias"]
@@ -414,7 +417,7 @@ class BiasReporter:
             if self._restored_step is not None:
                 self._writer.truncate_after(self._restored_step)
             elif self._writer.n_records:
-                from .cvlog import read_cvlog
+                from ..cvlog import read_cvlog
 
                 last = float(read_cvlog(self.log, mmap=True).column("step")[-1])
                 if last > simulation.currentStep:
@@ -442,7 +445,7 @@ class BiasReporter:
                          if self.last_checkpoint_step is not None else "no checkpoint was written by this run")
                 raise BlownUpError(f"CV values are not finite at step {step}: {s.tolist()} "
                                     f"({link.labels()}); the simulation has blown up. Stopping; {where}")
-            t = float(state.getTime()._value)
+            t = float(in_md_units(state.getTime()))
             if log_due:
                 energy, _ = link.bias.evaluate(s)
                 self._writer.write([[float(step), t, *s.tolist(), energy]])

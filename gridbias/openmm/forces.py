@@ -1,4 +1,4 @@
-"""The engine side of the OpenMM adapter (private): table layout, force construction, pushing the bias.
+"""The OpenMM adapter's engine forces: table layout, force construction, pushing the bias into a Context.
 
 Two forces carry a bias (both in the link's force group):
 
@@ -27,7 +27,7 @@ import math
 
 import numpy as np
 
-from .errors import ParameterError
+from ..errors import ParameterError
 
 __all__ = ["PERIODIC_PADDING", "TableLayout", "EngineBias", "require_openmm", "same_object"]
 
@@ -280,22 +280,12 @@ class EngineBias:
 
 def _inner_force(openmm, cv, periodic_box):
     """A force whose energy is the CV, for CustomCVForce."""
-    if not cv.geometric:
-        return openmm.XmlSerializer.deserialize(cv.serialized())
-    if type(cv).__name__ == "Dihedral":
-        f = openmm.CustomTorsionForce("theta")
-        f.addTorsion(*cv.atoms, [])
-    elif type(cv).__name__ == "Angle":
-        f = openmm.CustomAngleForce("theta")
-        f.addAngle(*cv.atoms, [])
-    elif type(cv).__name__ == "Distance":
-        f = openmm.CustomBondForce("r")
-        f.addBond(*cv.atoms, [])
-    else:
-        f = EngineBias._bond_force(openmm, [cv], "cv0", periodic_box)
-        return f
-    f.setUsesPeriodicBoundaryConditions(periodic_box)
-    return f
+    force = cv.single_force(openmm)
+    if force is None:
+        return EngineBias._bond_force(openmm, [cv], "cv0", periodic_box)
+    if cv.geometric:
+        force.setUsesPeriodicBoundaryConditions(periodic_box)
+    return force
 
 
 def check_route(route, cvs):
