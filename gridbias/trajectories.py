@@ -24,9 +24,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import _openmm_cvs as _cvs
 from .analysis.frames import record_index
 from .errors import ParameterError
+from .openmm import cvs as _cvs
 
 __all__ = ["Frames", "frame_steps", "load_frames", "DEFAULT_TOLERANCE"]
 

@@ -12,8 +12,9 @@ import logging
 
 import numpy as np
 
-from . import _openmm_cvs as _cvs
-from .errors import ParameterError
+from ..errors import ParameterError
+from . import cvs as _cvs
+from ._units import in_md_units
 
 __all__ = ["Observables", "RESERVED_COLUMNS"]
 
@@ -91,7 +92,7 @@ class Observables:
             context.setPositions(pos_n3)
             for group, i in enumerate(self._forces):
                 state = context.getState(getEnergy=True, groups={group})
-                out[i] = float(state.getPotentialEnergy()._value)
+                out[i] = float(in_md_units(state.getPotentialEnergy()))
         if not self._warned_nonfinite and not np.isfinite(out).all():
             self._warned_nonfinite = True
             bad = [name for name, v in zip(self.names, out, strict=True) if not np.isfinite(v)]
