@@ -25,8 +25,8 @@ pytestmark = pytest.mark.openmm
 
 TEMPERATURE = 300.0
 KT = TEMPERATURE * 0.00831446261815324  # kJ/mol (R in kJ/mol/K, CODATA 2018)
-# U(x, y, z), kJ/mol and nm: a tilted double well in x (barrier 5 kT), y harmonic about 0.5 x, and a double well
-# in z (barrier 1.5 kT) about 0.6 y. Coupled, so the marginals are not those of the separate terms.
+# U(x, y, z), kJ/mol and nm: a tilted double well in x (barrier 5 kT), y harmonic about 0.5 x, and a double
+# well in z (barrier 1.5 kT) about 0.6 y. Coupled, so the marginals are not those of the separate terms.
 A, TILT, KY, SLOPE_Y, BZ, SLOPE_Z, HALF_GAP = 5 * KT, 0.5 * KT, 30.0, 0.5, 1.5 * KT, 0.6, 0.5
 EXPRESSION = (f"{A}*(x^2-1)^2 + {TILT}*x + {KY / 2}*(y-{SLOPE_Y}*x)^2"
               f" + {BZ}*((z-{SLOPE_Z}*y)^2-{HALF_GAP ** 2})^2/{HALF_GAP ** 4}")
@@ -75,14 +75,13 @@ def exact_marginal_z(z_points):
     return f - f.min()
 
 
-def exact_average(g):
-    """<g(x, y)> over the model, z integrated out, by scipy quadrature (nested quad)."""
+def exact_probability_x_below_zero():
+    """P(x < 0) over the model, by scipy quadrature (x from -BOUND to 0 against the whole range)."""
     def density(y, x):
         return math.exp(-(_ux(x) + _uy(x, y)) / KT)
 
-    z_norm = integrate.dblquad(density, -BOUND, BOUND, -BOUND, BOUND, epsrel=1e-9)[0]
-    num = integrate.dblquad(lambda y, x: g(x, y) * density(y, x), -BOUND, BOUND, -BOUND, BOUND, epsrel=1e-9)[0]
-    return num / z_norm
+    left = integrate.dblquad(density, -BOUND, 0.0, -BOUND, BOUND, epsrel=1e-9)[0]
+    return left / integrate.dblquad(density, -BOUND, BOUND, -BOUND, BOUND, epsrel=1e-9)[0]
 
 
 def _topology():
@@ -105,7 +104,8 @@ def run_biased(folder, seed, *, n_steps=N_STEPS, observables=True):
     link = gbo.attach(system, cvs, bias, route="cvforce")  # Reference + CustomCVForce: the cheap route here
     integrator = openmm.LangevinMiddleIntegrator(TEMPERATURE, 5.0, 0.01)
     integrator.setRandomNumberSeed(seed)
-    simulation = app.Simulation(_topology(), system, integrator, openmm.Platform.getPlatformByName("Reference"))
+    platform = openmm.Platform.getPlatformByName("Reference")
+    simulation = app.Simulation(_topology(), system, integrator, platform)
     simulation.context.setPositions([[-1.0, -0.5, 0.0]])
     simulation.context.setVelocitiesToTemperature(TEMPERATURE, seed)
     extra = {"observables": [gbo.coordinate(0, "y", name="y")]} if observables else {}
@@ -115,3 +115,140 @@ def run_biased(folder, seed, *, n_steps=N_STEPS, observables=True):
     simulation.step(n_steps)
     reporter.close()
     return link
+
+
+def exact_average_yz(g, *, z_above=None):
+    """<g(y, z)> over the model (x integrated out) by nested scipy quadrature; with ``z_above`` the average
+    of g times the indicator of z > z_above (integration limits, not a step in the integrand)."""
+    def inner(y, weight, lower):
+        lo, hi = SLOPE_Z * y - BOUND, SLOPE_Z * y + BOUND
+        lo = lo if lower is None else max(lo, lower)
+        return _quad(lambda z: weight(z) * math.exp(-_uz(y, z) / KT), lo, hi) if hi > lo else 0.0
+
+    num = _quad(lambda y: _gx_y(y) * inner(y, lambda z: g(y, z), z_above))
+    den = _quad(lambda y: _gx_y(y) * inner(y, lambda z: 1.0, None))
+    return num / den
+
+
+EDGES = np.linspace(-1.6, 1.6, 33)
+MIN_FRAMES = 20  # bins with fewer frames are left out: first-order error bars fail there (common practice)
+
+
+@pytest.fixture(scope="module")
+def exact():
+    """The exact values the runs are compared with (scipy quadrature, a few seconds, computed once)."""
+    centers = 0.5 * (EDGES[1:] + EDGES[:-1])
+    return {"F(y)": exact_marginal_y(centers), "F(z)": exact_marginal_z(centers),
+            "<y^2>": exact_average_yz(lambda y, z: y * y), "<z^2>": exact_average_yz(lambda y, z: z * z),
+            "P(x<0)": exact_probability_x_below_zero(),
+            "P(z>0)": exact_average_yz(lambda y, z: 1.0, z_above=0.0)}
+
+
+@pytest.fixture(scope="module", params=[2, 7])
+def biased_run(request, tmp_path_factory):
+    folder = tmp_path_factory.mktemp(f"three_d_{request.param}")
+    link = run_biased(folder, request.param)
+    log = read_cvlog(folder / "run.gbl")
+    weights = analysis.offset_weights(link.bias, log.column("time"), frame_bias=log.column("bias"))
+    return folder, link, log, weights
+
+
+def _check_profile(profile, exact_f):
+    """RMSE over the bins with exact F < 4 kT (and >= MIN_FRAMES frames), after aligning the zeros with
+    Boltzmann weights, must be below 3x the rms of the reported errors there: for independent Gaussian errors
+    the RMSE over ~20 bins is the rms error within ~15 %, and 3x leaves room for the correlation between
+    bins through the common normalisation and for the noise of the error estimate itself."""
+    keep = (exact_f < 4 * KT) & (profile.counts >= MIN_FRAMES)
+    assert keep.sum() >= 15, keep.sum()
+    w = np.exp(-exact_f[keep] / KT)
+    diff = profile.free_energy[keep] - exact_f[keep]
+    diff = diff - np.sum(w * diff) / np.sum(w)
+    rmse = math.sqrt(np.mean(diff**2))
+    rms_error = math.sqrt(np.mean(profile.error[keep] ** 2))
+    assert profile.plateau_found[keep].mean() >= 0.8  # elsewhere the error is a lower bound: a stricter check
+    assert rmse < 3 * rms_error, (rmse / KT, rms_error / KT)
+    assert rmse < 0.5 * KT  # and the run is long enough for the check to mean something
+
+
+def test_logged_observable_profile_matches_the_exact_marginal(biased_run, exact):
+    """F(y) from the observable y the reporter logged, reweighted with c(t), against quadrature."""
+    _, _, log, weights = biased_run
+    assert log.columns == ("step", "time", "x", "bias", "y")
+    assert log.metadata["observables"] == [{"name": "y", "kind": "coordinate", "atoms": [0], "axis": "y"}]
+    profile = analysis.free_energy_along(weights, log.column("y"), EDGES)
+    _check_profile(profile, exact["F(y)"])
+
+
+def test_quantity_from_the_dcd_profile_matches_the_exact_marginal(biased_run, exact):
+    """F(z) with z computed afterwards from OpenMM's DCD (read with mdtraj), against quadrature."""
+    folder, _, log, weights = biased_run
+    frames = trajectories.load_frames(folder / "run.dcd", log, top=_topology())
+    assert frames.checked == ("x", "y")  # the logged CVs recomputed from the frames agree
+    np.testing.assert_array_equal(frames.steps, np.arange(1, N_STEPS // DCD_EVERY + 1) * DCD_EVERY)
+    frame_weights = analysis.weights_at_steps(weights, log.column("step"), frames.steps)
+    z = frames.trajectory.xyz[:, 0, 2]
+    profile = analysis.free_energy_along(frame_weights, z, EDGES)
+    _check_profile(profile, exact["F(z)"])
+
+
+def test_averages_and_region_probabilities_match_exact_expectations(biased_run, exact):
+    """<y^2>, <z^2>, P(x < 0) and P(z > 0) of the unbiased model (nested scipy quadrature), within 4 standard
+    errors of the reweighted estimates."""
+    folder, _, log, weights = biased_run
+    frames = trajectories.load_frames(folder / "run.dcd", log, top=_topology())
+    frame_weights = analysis.weights_at_steps(weights, log.column("step"), frames.steps)
+    z = frames.trajectory.xyz[:, 0, 2]
+    checks = [
+        (analysis.reweighted_average(weights, log.column("y") ** 2), exact["<y^2>"]),
+        (analysis.reweighted_average(frame_weights, z**2), exact["<z^2>"]),
+        (analysis.region_probability(weights, log.column("x") < 0), exact["P(x<0)"]),
+        (analysis.region_probability(frame_weights, z > 0), exact["P(z>0)"]),
+    ]
+    for estimate, value in checks:
+        found = estimate.value if hasattr(estimate, "value") else estimate.probability
+        # without a blocking plateau the error is a lower bound, which only makes the check stricter
+        assert abs(found - value) < 4 * estimate.error, (found, estimate.error, value)
+
+
+def test_frames_that_do_not_line_up_are_refused(biased_run, tmp_path):
+    """A DCD longer than its log, frames at a non-multiple interval, and another run's frames: each refused
+    with the reason named."""
+    folder, _, log, weights = biased_run
+    from gridbias.cvlog import CVLogWriter
+
+    short = tmp_path / "short.gbl"
+    with CVLogWriter(short, log.columns, log.units, log.metadata) as writer:
+        writer.write(log.data[: log.n_records // 2])
+    with pytest.raises(ParameterError, match=r"after the log's last record \(the trajectory is longer than"):
+        trajectories.load_frames(folder / "run.dcd", read_cvlog(short), top=_topology())
+    with pytest.raises(ParameterError, match="not a multiple of the log interval"):
+        analysis.weights_at_steps(weights, log.column("step"), np.arange(1, 50) * 150)
+    other = tmp_path / "other"
+    other.mkdir()
+    run_biased(other, 99, n_steps=2_000)
+    with pytest.raises(ParameterError, match=r"does not line up with CV log .* \(step 200\) x computed"):
+        trajectories.load_frames(other / "run.dcd", log, top=_topology())
+    with pytest.raises(ParameterError, match="first_step must be a step number"):
+        trajectories.frame_steps(folder / "run.dcd", first_step=-1)
+
+
+def test_observable_names_must_not_clash(tmp_path):
+    system = openmm.System()
+    system.addParticle(10.0)
+    cvs = [gbo.coordinate(0, "x", name="x")]
+    bias = gbo.make_bias(cvs, lower=[-2.0], upper=[2.0], bins=[40], sigma=[0.1], height=1.0,
+                         temperature=TEMPERATURE)
+    link = gbo.attach(system, cvs, bias, route="cvforce")
+    log = str(tmp_path / "run.gbl")
+    with pytest.raises(ParameterError, match=r"observables\[0\] is named 'x', already the name of the bia"):
+        link.reporter(10, log=log, observables=[gbo.coordinate(0, "y", name="x")])
+    twice = [gbo.coordinate(0, "y", name="y"), gbo.coordinate(0, "z", name="y")]
+    with pytest.raises(ParameterError, match=r"observables\[1\] is named 'y', already the name of observ"):
+        link.reporter(10, log=log, observables=twice)
+    with pytest.raises(ParameterError, match=r"observables\[0\] is named 'bias', already the name of a col"):
+        link.reporter(10, log=log, observables=[gbo.coordinate(0, "y", name="bias")])
+    with pytest.raises(ParameterError, match=r"observables\[0\] \(coordinate\) has no name"):
+        link.reporter(10, log=log, observables=[gbo.coordinate(0, "y")])
+    with pytest.raises(ParameterError, match="observables are written to the CV log: give log="):
+        link.reporter(10, observables=[gbo.coordinate(0, "y", name="y")])
+    assert not (tmp_path / "run.gbl").exists()  # nothing written by a refused call
