@@ -44,7 +44,7 @@ simulation.reporters.append(link.reporter(stride=500, checkpoint=checkpoint, che
 # ... plus one line: continue from the checkpoint if there is one.
 if os.path.exists(checkpoint):
     meta = link.restore(simulation, checkpoint)
-    print(f"continuing from step {meta['step']} ({link.bias.n_hills} hills)")
+    print(f"continuing from step {meta.step} ({link.bias.n_hills} hills)")
 else:
     simulation.minimizeEnergy()
     simulation.context.setVelocitiesToTemperature(300 * unit.kelvin)

@@ -63,7 +63,7 @@ found = comm.allgather(os.path.exists(checkpoint))
 if all(found):
     meta = link.restore(simulation, checkpoint)
     if rank == 0:
-        print(f"continuing from step {meta['step']} ({link.bias.n_hills} hills, "
+        print(f"continuing from step {meta.step} ({link.bias.n_hills} hills, "
               f"{link.bias.n_walkers} walkers)")
 elif any(found):
     missing = [r for r, ok in enumerate(found) if not ok]

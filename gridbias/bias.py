@@ -489,10 +489,21 @@ class GridBias:
 
     @classmethod
     def load(cls, path) -> "GridBias":
-        """Read a bias written by ``save``; verifies format, version and checksum."""
-        from .checkpoint import read_checkpoint
+        """Read a bias written by ``save``; verifies format, version and checksum.
 
-        meta, arrays = read_checkpoint(path, kind=_STATE_KIND)
+        A run checkpoint of the OpenMM adapter holds more than a bias: ``gridbias.runs.load_run`` opens
+        that one (and this kind too).
+        """
+        from .checkpoint import read_checkpoint
+        from .runs import CHECKPOINT_KIND
+
+        try:
+            meta, arrays = read_checkpoint(path, kind=_STATE_KIND)
+        except CheckpointError as exc:
+            if f"holds kind {CHECKPOINT_KIND!r}" in str(exc):
+                raise CheckpointError(f"{exc}: it is a run checkpoint of the OpenMM adapter; open it with "
+                                      "gridbias.runs.load_run(path), whose .bias is the GridBias") from exc
+            raise
         return cls.from_state(meta, arrays)
 
     def __repr__(self):

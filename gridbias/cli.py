@@ -1,4 +1,4 @@
-"""The ``gridbias`` command (also ``python -m gridbias``).
+"""The ``gridbias`` command (also ``python -m gridbias``): parse the arguments, call the library, print.
 
 Subcommands:
 
@@ -12,26 +12,29 @@ another run holds the checkpoint, Ctrl-C); 2 bad usage or bad input (unknown opt
 unreadable file, a file of the wrong kind, an unknown column, a value out of range). Every error is one
 line on stderr; ``--traceback`` adds the Python traceback for bug reports.
 
-Units are OpenMM's: kJ/mol, nm, rad, ps, K. Angles are shown in degrees unless ``--angles rad``.
+Units are OpenMM's: kJ/mol, nm, rad, ps, K. Angles are shown in degrees unless ``--angle-unit rad``.
+
+This module only parses, calls the library (gridbias.runs, gridbias.analysis, gridbias.exports,
+gridbias.demo) and prints; nothing in the package imports it except ``gridbias.__main__``.
 """
 
 from __future__ import annotations
 
 import argparse
-import io
 import math
 import os
 import sys
 import textwrap
-import time
 import traceback
-from dataclasses import dataclass, replace
+from dataclasses import replace
 
 import numpy as np
 
-__all__ = ["main", "build_parser", "CommandError", "ProgressLine", "format_duration", "Run", "load_run",
-           "read_log", "run_frames", "surface_bytes", "profile_bytes", "shown_profile", "figure_bytes",
-           "require_plots", "write_atomically"]
+from .exports import FIGURE_FORMATS, TABLE_FORMATS, CVDisplay, profile_bytes, surface_bytes, write_file
+from .progress import ProgressLine
+from .runs import load_run, log_column, read_log, run_frames
+
+__all__ = ["main", "build_parser", "CommandError"]
 
 EXIT_OK = 0
 EXIT_FAILED = 1
@@ -41,8 +44,6 @@ EXIT_BAD_INPUT = 2
 #: neither a value nor an error bar to trust (common practice, no source).
 FEW_FRAMES = 20
 
-_TABLE_FORMATS = ("csv", "npz")
-_FIGURE_FORMATS = ("png", "svg", "pdf")
 
 
 # ------------------------------------------------------------------------------------------------ errors
@@ -73,201 +74,7 @@ class _Parser(argparse.ArgumentParser):
         raise _UsageError(f"{message} (see '{self.prog} --help')")
 
 
-# ---------------------------------------------------------------------------------------------- progress
-class ProgressLine:
-    """A one-line progress display on a stream.
-
-    On a terminal the line is rewritten in place (at most every ``interval`` seconds). Elsewhere (a log
-    file, a pipe) a full line is written at most every ``plain_interval`` seconds, the first one only after
-    that long, so short tasks leave no trace in logs.
-
-    Parameters
-    ----------
-    stream : text stream, default sys.stderr
-    interval, plain_interval : float, s
-    """
-
-    def __init__(self, stream=None, *, interval: float = 0.25, plain_interval: float = 15.0):
-        self.stream = sys.stderr if stream is None else stream
-        self.live = bool(getattr(self.stream, "isatty", lambda: False)())
-        self.interval = interval if self.live else plain_interval
-        self._last = -math.inf if self.live else time.monotonic()
-        self._width = 0
-        self._shown = False
-
-    def update(self, text: str, *, force: bool = False) -> None:
-        """Show ``text`` if the last update is older than the interval (or ``force``)."""
-        now = time.monotonic()
-        if not force and now - self._last < self.interval:
-            return
-        self._last = now
-        self._shown = True
-        if self.live:
-            self.stream.write("\r" + text + " " * max(self._width - len(text), 0))
-            self._width = len(text)
-        else:
-            self.stream.write(text + "\n")
-        self.stream.flush()
-
-    def finish(self, text: str | None = None) -> None:
-        """End the display: show ``text`` if given, or if anything was shown before; end the line."""
-        if text is not None and (self._shown or self.live):
-            self.update(text, force=True)
-        if self.live and self._width:
-            self.stream.write("\n")
-            self.stream.flush()
-        self._width = 0
-        self._shown = False
-
-    def counter(self, what: str):
-        """A ``progress(done, total)`` callback for the analysis functions."""
-        def report(done, total):
-            text = f"{what}: {done}/{total}"
-            if done < total:
-                self.update(text)
-            elif self._shown:
-                self.finish(text)
-        return report
-
-
-def format_duration(seconds: float) -> str:
-    """'42 s', '3 min 05 s', '1 h 02 min'."""
-    if not math.isfinite(seconds):
-        return "?"
-    seconds = max(0, int(round(seconds)))
-    if seconds < 60:
-        return f"{seconds} s"
-    if seconds < 3600:
-        return f"{seconds // 60} min {seconds % 60:02d} s"
-    return f"{seconds // 3600} h {seconds % 3600 // 60:02d} min"
-
-
-# ------------------------------------------------------------------------------------------------- runs
-_ANGLE_KINDS = ("dihedral", "angle")
-
-
-@dataclass(frozen=True)
-class Run:
-    """What a checkpoint holds, as the commands need it.
-
-    Attributes
-    ----------
-    path : str
-    bias : GridBias
-    names : tuple of str
-        CV names (``cv0, cv1, ...`` when the file does not name them).
-    units : tuple of str
-        CV units ("rad", "nm", or "" when unknown).
-    definitions : tuple of str
-        One phrase per CV ("dihedral of atoms 4-6-8-14"), or "" when unknown.
-    time_ps : float
-        Simulated time at the checkpoint (run checkpoints), else the time of the last hill (NaN if none).
-    step : int or None
-        MD step at the checkpoint (run checkpoints only).
-    source : str
-        "OpenMM run checkpoint" or "bias checkpoint".
-    platform : str or None
-    """
-
-    path: str
-    bias: object
-    names: tuple
-    units: tuple
-    definitions: tuple
-    time_ps: float
-    step: int | None
-    source: str
-    platform: str | None
-
-
-def _describe_cv(spec: dict) -> tuple[str, str]:
-    """(unit, phrase) for a CV description stored by the OpenMM adapter."""
-    kind = str(spec.get("kind", "?"))
-    if kind == "force":
-        return str(spec.get("unit", "")), f"energy of a {spec.get('class', 'force')}"
-    unit = "rad" if kind in _ANGLE_KINDS else "nm"
-    if "atoms" in spec:
-        atoms = "-".join(str(a) for a in spec["atoms"])
-        return unit, f"{kind.replace('_', ' ')} of atoms {atoms}"
-    if kind == "centroid_distance":
-        return unit, (f"distance between centroids of {len(spec.get('group1', []))} and "
-                      f"{len(spec.get('group2', []))} atoms")
-    return unit, kind.replace("_", " ")
-
-
-def load_run(path) -> Run:
-    """Read a checkpoint written by ``GridBias.save`` or by the OpenMM adapter (``BiasLink.save``).
-
-    Raises
-    ------
-    CheckpointError
-        Missing, unreadable, damaged or foreign file, or a checkpoint that holds no bias.
-    """
-    from .bias import GridBias
-    from .checkpoint import read_checkpoint
-    from .errors import CheckpointError
-
-    path = os.fspath(path)
-    meta, arrays = read_checkpoint(path)
-    if "bias" in meta and isinstance(meta["bias"], dict):  # a run checkpoint of the OpenMM adapter
-        bias_arrays = {k[len("bias."):]: v for k, v in arrays.items() if k.startswith("bias.")}
-        try:
-            bias = GridBias.from_state(meta["bias"], bias_arrays)
-        except CheckpointError as exc:
-            raise CheckpointError(f"checkpoint {path!r}: {exc}") from exc
-        specs = meta.get("cvs") or [{} for _ in range(bias.ndim)]
-        labels = meta.get("labels") or [f"cv{i}" for i in range(bias.ndim)]
-        described = [_describe_cv(s) for s in specs]
-        step = int(meta["step"]) if "step" in meta else None
-        return Run(path, bias, tuple(str(x) for x in labels), tuple(u for u, _ in described),
-                   tuple(p for _, p in described), float(meta.get("time_ps", math.nan)), step,
-                   "OpenMM run checkpoint", meta.get("platform"))
-    if meta.get("kind") == "gridbias.bias":
-        try:
-            bias = GridBias.from_state(meta, arrays)
-        except CheckpointError as exc:
-            raise CheckpointError(f"checkpoint {path!r}: {exc}") from exc
-        times = np.asarray(bias.history.times)
-        t_last = float(times[-1]) if times.size else math.nan
-        d = bias.ndim
-        return Run(path, bias, tuple(f"cv{i}" for i in range(d)), ("",) * d, ("",) * d, t_last, None,
-                   "bias checkpoint", None)
-    raise CheckpointError(f"checkpoint {path!r} holds no metadynamics bias (its metadata has neither a "
-                          "'bias' entry nor kind 'gridbias.bias')")
-
-
 # -------------------------------------------------------------------------------------------- display
-class _Display:
-    """How CV values are shown: angles in degrees or radians, other units as they are."""
-
-    def __init__(self, names, units, angles: str):
-        self.names = tuple(names)
-        self.cv_units = tuple(units)
-        self.degrees = tuple(u == "rad" and angles == "deg" for u in units)
-
-    def unit(self, i) -> str:
-        return "deg" if self.degrees[i] else self.cv_units[i]
-
-    def scale(self, i) -> float:
-        return 180.0 / math.pi if self.degrees[i] else 1.0
-
-    def suffix(self, i) -> str:
-        """' deg', ' nm', ... or '' when the unit is unknown."""
-        unit = self.unit(i)
-        return f" {unit}" if unit else ""
-
-    def label(self, i) -> str:
-        unit = self.unit(i)
-        return f"{self.names[i]} ({unit})" if unit else self.names[i]
-
-    def value(self, i, x) -> str:
-        return f"{x * self.scale(i):.4g}"
-
-    def to_cv(self, i, x) -> float:
-        """A value typed by the user in the display unit, in CV units."""
-        return x / self.scale(i)
-
-
 def _fmt(x, digits=4) -> str:
     return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
 
@@ -290,169 +97,6 @@ def _check_outputs(paths, allowed, option):
     return checked
 
 
-def write_atomically(path, data: bytes) -> None:
-    """Write ``data`` to ``path`` atomically (an old file survives a failure); OutputError if it fails."""
-    from ._files import write_atomically as write
-    from .errors import OutputError
-
-    write(path, data, what="file", error=OutputError)
-
-
-def _csv_bytes(header, columns) -> bytes:
-    buffer = io.StringIO()
-    np.savetxt(buffer, np.column_stack(columns), delimiter=",", header=",".join(header), comments="",
-               fmt="%.10g")
-    return buffer.getvalue().encode("utf-8")
-
-
-def _npz_bytes(arrays) -> bytes:
-    buffer = io.BytesIO()
-    np.savez(buffer, **arrays)
-    return buffer.getvalue()
-
-
-def figure_bytes(figure, fmt) -> bytes:
-    buffer = io.BytesIO()
-    figure.savefig(buffer, format=fmt, dpi=150)
-    return buffer.getvalue()
-
-
-def require_plots():
-    try:
-        import matplotlib  # noqa: F401 - only to say clearly what is missing
-
-        from . import plots
-    except ImportError as exc:
-        raise CommandError(f"figures need matplotlib ({exc}); install it with: pip install 'gridbias[plot]'",
-                           EXIT_FAILED) from exc
-    return plots
-
-
-def _plot_names(names, units, periodic):
-    """Axis names for gridbias.plots: angles get their unit from the plot; other axes carry theirs."""
-    return tuple(f"{n} ({u})" if u and not p else n for n, u, p in zip(names, units, periodic, strict=True))
-
-
-def surface_bytes(surface, fmt, *, names, units, angles="deg", basins=None) -> bytes:
-    """A free-energy surface (analysis.Surface) as the bytes of a .csv, .npz or figure file.
-
-    CSV: one row per grid node, the CV columns (angles in ``angles``) then ``free_energy[kJ/mol]``.
-    NPZ: ``free_energy`` (grid shape, kJ/mol), ``axis0..`` node coordinates in CV units, ``names``,
-    ``units``, ``periodic``, ``lower``, ``upper``, ``kT``, ``bias_factor`` (NaN: standard), ``time_ps``,
-    ``n_hills``. Figures (png, svg, pdf): filled contours (2 CVs) or a curve (1 CV) by gridbias.plots,
-    with ``basins`` marked if given.
-    """
-    grid = surface.grid
-    show = _Display(names, units, angles)
-    if fmt == "csv":
-        nodes = grid.nodes().reshape(-1, grid.ndim)
-        header = [f"{names[i]}[{show.unit(i)}]" if show.unit(i) else names[i] for i in range(grid.ndim)]
-        header.append("free_energy[kJ/mol]")
-        columns = [nodes[:, i] * show.scale(i) for i in range(grid.ndim)]
-        columns.append(surface.free_energy.reshape(-1))
-        return _csv_bytes(header, columns)
-    if fmt == "npz":
-        arrays = {f"axis{i}": np.asarray(grid.axes[i]) for i in range(grid.ndim)}
-        gamma = math.nan if surface.bias_factor is None else surface.bias_factor
-        arrays.update(free_energy=surface.free_energy, names=np.array(names), units=np.array(units),
-                      periodic=np.asarray(grid.periodic), lower=np.asarray(grid.lower),
-                      upper=np.asarray(grid.upper), kT=np.float64(surface.kT), bias_factor=np.float64(gamma),
-                      time_ps=np.float64(surface.time), n_hills=np.int64(surface.n_hills))
-        return _npz_bytes(arrays)
-    plots = require_plots()
-    figure = plots.plot_free_energy(surface, basins=basins, names=_plot_names(names, units, grid.periodic),
-                                    angle_unit=angles)
-    return figure_bytes(figure, fmt)
-
-
-def profile_bytes(profile, fmt, *, units, angles="deg") -> bytes:
-    """A reweighted profile (analysis.Profile) as the bytes of a .csv, .npz or figure file.
-
-    CSV: one row per bin, the bin centres (angles in ``angles``), ``free_energy[kJ/mol]``,
-    ``error[kJ/mol]``, ``frames``. NPZ: ``edges0..``, ``centers0..`` (column units), ``free_energy``,
-    ``error``, ``probability``, ``counts``, ``plateau_found``, ``names``, ``units``, ``kT``,
-    ``effective_sample_size``. Figures (png, svg, pdf): made by gridbias.plots.
-    """
-    show = _Display(profile.names, units, angles)
-    if fmt == "csv":
-        mesh = np.meshgrid(*profile.centers, indexing="ij")
-        header = [f"{c}[{show.unit(i)}]" if show.unit(i) else c for i, c in enumerate(profile.names)]
-        header += ["free_energy[kJ/mol]", "error[kJ/mol]", "frames"]
-        columns = [m.reshape(-1) * show.scale(i) for i, m in enumerate(mesh)]
-        columns += [profile.free_energy.reshape(-1), profile.error.reshape(-1), profile.counts.reshape(-1)]
-        return _csv_bytes(header, columns)
-    if fmt == "npz":
-        arrays = {f"edges{i}": e for i, e in enumerate(profile.edges)}
-        arrays.update({f"centers{i}": c for i, c in enumerate(profile.centers)})
-        arrays.update(free_energy=profile.free_energy, error=profile.error, probability=profile.probability,
-                      counts=profile.counts, plateau_found=profile.plateau_found,
-                      names=np.array(profile.names), units=np.array(units), kT=np.float64(profile.kT),
-                      effective_sample_size=np.float64(profile.effective_sample_size))
-        return _npz_bytes(arrays)
-    plots = require_plots()
-    return figure_bytes(plots.plot_free_energy(shown_profile(profile, units, angles)), fmt)
-
-
-def shown_profile(profile, units, angles="deg"):
-    """The profile with its axes in the shown units (angles in degrees if asked) and named with them,
-    ready for gridbias.plots (which shows a profile's axes as they are)."""
-    show = _Display(profile.names, units, angles)
-    edges = tuple(e * show.scale(i) for i, e in enumerate(profile.edges))
-    names = tuple(show.label(i) for i in range(profile.ndim))
-    return replace(profile, edges=edges, names=names)
-
-
-# ----------------------------------------------------------------------------------------------- logs
-def read_log(path):
-    from .cvlog import read_cvlog
-
-    log = read_cvlog(path)
-    if log.n_records < 4:
-        raise CommandError(f"CV log {path!r} holds {log.n_records} complete records; at least 4 are needed")
-    return log
-
-
-def _log_column(log, name, option) -> np.ndarray:
-    if name not in log.columns:
-        raise CommandError(f"{option}: CV log {log.path!r} has no column {name!r}; its columns are "
-                           f"{', '.join(log.columns)}")
-    values = np.asarray(log.column(name), dtype=float)
-    if not np.isfinite(values).all():
-        bad = int(np.flatnonzero(~np.isfinite(values))[0])
-        raise CommandError(f"{option}: column {name!r} of CV log {log.path!r} holds {values[bad]} at record "
-                           f"{bad}; every value must be finite")
-    return values
-
-
-def run_frames(run, log, cv_columns=None, time_column="time"):
-    """(times (n,), cvs (n, d), bias (n,) or None, note) for the frames that belong to the run."""
-    names = cv_columns or list(run.names)
-    if len(names) != run.bias.ndim:
-        raise CommandError(f"--columns: give {run.bias.ndim} CV column names (the checkpoint has "
-                           f"{run.bias.ndim} CVs), got {len(names)}: {', '.join(names)}")
-    times = _log_column(log, time_column, "--time-column")
-    cvs = np.column_stack([_log_column(log, n, "--columns") for n in names])
-    logged_bias = _log_column(log, "bias", "bias column") if "bias" in log.columns else None
-    if (np.diff(times) < 0).any():
-        bad = int(np.flatnonzero(np.diff(times) < 0)[0]) + 1
-        raise CommandError(f"CV log {log.path!r}: column {time_column!r} goes back in time at record {bad} "
-                           f"({times[bad]} after {times[bad - 1]} ps); one run's frames in time order are "
-                           "needed")
-    note = ""
-    if np.isfinite(run.time_ps):
-        keep = times <= run.time_ps * (1 + 1e-12) + 1e-9
-        dropped = int((~keep).sum())
-        if dropped:
-            note = (f"{dropped} frames logged after the checkpoint's time ({run.time_ps:g} ps) were left "
-                    "out: the checkpoint does not hold the bias they felt")
-            times, cvs = times[keep], cvs[keep]
-            logged_bias = None if logged_bias is None else logged_bias[keep]
-    if times.size < 4:
-        raise CommandError(f"CV log {log.path!r} has {times.size} frames within the checkpoint's time; "
-                           "at least 4 are needed")
-    return times, cvs, logged_bias, note
-
-
 # ------------------------------------------------------------------------------------------------ inspect
 def _cmd_inspect(args) -> int:
     from . import analysis
@@ -467,15 +111,15 @@ def _cmd_inspect(args) -> int:
         notes += [note] if note else []
         if not any(run.units):  # a bare bias checkpoint: the log knows the CVs' units
             run = replace(run, units=tuple(log.unit(c) for c in (args.columns or run.names)))
-    show = _Display(run.names, run.units, args.angles)
+    show = CVDisplay(run.names, run.units, args.angle_unit)
     out = []
     add = out.append
     add(f"checkpoint   {run.path}")
     if run.step is not None:
         platform = f", written on the {run.platform} platform" if run.platform else ""
-        add(f"contents     {run.source} (step {run.step:,}, {_fmt(run.time_ps, 8)} ps simulated{platform})")
+        add(f"contents     {run.source} (step {run.step:,}, {_fmt(run.time, 8)} ps simulated{platform})")
     else:
-        last = f", last hill at {_fmt(run.time_ps, 8)} ps" if np.isfinite(run.time_ps) else ""
+        last = f", last hill at {_fmt(run.time, 8)} ps" if np.isfinite(run.time) else ""
         add(f"contents     {run.source} (no MD state{last})")
     if bias.bias_factor is None:
         add(f"method       standard metadynamics, {bias.temperature:g} K (kBT = {bias.kT:.4g} kJ/mol)")
@@ -570,7 +214,7 @@ def _cmd_inspect(args) -> int:
 def _cmd_export(args) -> int:
     from . import analysis
 
-    outputs = _check_outputs(args.outputs, _TABLE_FORMATS + _FIGURE_FORMATS, "output")
+    outputs = _check_outputs(args.outputs, TABLE_FORMATS + FIGURE_FORMATS, "output")
     run = load_run(args.checkpoint)
     bias = run.bias
     if bias.n_hills == 0:
@@ -590,12 +234,12 @@ def _cmd_export(args) -> int:
     else:
         surface = analysis.surface_at(bias)
     basins = None
-    if any(fmt in _FIGURE_FORMATS for _, fmt in outputs):
+    if any(fmt in FIGURE_FORMATS for _, fmt in outputs):
         basins = analysis.find_basins(bias.grid, surface.free_energy, bias.kT)
     for path, fmt in outputs:
-        data = surface_bytes(surface, fmt, names=run.names, units=run.units, angles=args.angles,
+        data = surface_bytes(surface, fmt, names=run.names, units=run.units, angle_unit=args.angle_unit,
                              basins=basins)
-        write_atomically(path, data)
+        write_file(path, data)
         print(f"wrote {path}")
     what = f"{surface.n_hills:,} hills" + (f", t = {surface.time:g} ps" if np.isfinite(surface.time) else "")
     print(f"free-energy surface of {run.path} ({what}), kJ/mol, minimum 0")
@@ -637,7 +281,7 @@ def _edges(values, column, dihedral, bins, given, show_scale):
 def _cmd_reweight(args) -> int:
     from . import analysis
 
-    outputs = _check_outputs(args.outputs or [], _TABLE_FORMATS + _FIGURE_FORMATS, "--output")
+    outputs = _check_outputs(args.outputs or [], TABLE_FORMATS + FIGURE_FORMATS, "--output")
     if len(args.along) > 2:
         raise CommandError(f"--along takes one or two columns, got {len(args.along)}: "
                            f"{', '.join(args.along)}")
@@ -654,9 +298,9 @@ def _cmd_reweight(args) -> int:
     log = read_log(args.log)
     t, cvs, logged_bias, note = run_frames(run, log, args.columns, args.time_column)
     # run_frames keeps a prefix of the (time-ordered) frames: the ones within the checkpoint's time.
-    values = np.column_stack([_log_column(log, c, "--along")[: t.size] for c in args.along])
+    values = np.column_stack([log_column(log, c, "--along")[: t.size] for c in args.along])
     units = [log.unit(c) for c in args.along]
-    show = _Display(args.along, units, args.angles)
+    show = CVDisplay(args.along, units, args.angle_unit)
     bias = run.bias
     progress = ProgressLine()
     if args.method == "offset":
@@ -693,7 +337,7 @@ def _cmd_reweight(args) -> int:
         print(f"  {finite.sum()} of {finite.size} bins reached; F up to {np.nanmax(profile.free_energy):.4g} "
               f"kJ/mol, median error {np.nanmedian(profile.error[finite]):.3g} kJ/mol")
     for path, fmt in outputs:
-        write_atomically(path, profile_bytes(profile, fmt, units=units, angles=args.angles))
+        write_file(path, profile_bytes(profile, fmt, units=units, angle_unit=args.angle_unit))
         print(f"wrote {path}")
     return EXIT_OK
 
@@ -711,7 +355,7 @@ def _cmd_demo(args) -> int:
 # ------------------------------------------------------------------------------------------------ parser
 _UNITS = ("Units: energies in kJ/mol (and kBT where marked), times in ps, temperatures in K, CVs in their "
           "own units (nm, rad)")
-_UNITS_NOTE = _UNITS + "; angles are shown and typed in degrees unless --angles rad."
+_UNITS_NOTE = _UNITS + "; angles are shown and typed in degrees unless --angle-unit rad."
 
 
 def _option_type(convert, allowed, expected, malformed):
@@ -740,9 +384,10 @@ def _names(text):
     return names
 
 
-def _add_angles(p):
-    p.add_argument("--angles", choices=("deg", "rad"), default="deg",
-                   help="show (and read --range values of) angle CVs in degrees or radians (default deg)")
+def _add_angle_unit(p):
+    p.add_argument("--angle-unit", "--angles", dest="angle_unit", choices=("deg", "rad"), default="deg",
+                   help="show (and read --range values of) angle CVs in degrees or radians (default deg; "
+                        "--angles is the older spelling)")
 
 
 def _add_frames(p):
@@ -781,7 +426,7 @@ def build_parser() -> argparse.ArgumentParser:
                "log, compared with the 2d run's surface when that run is in the same --out folder.\n"
                "The run: 300 K, Langevin, 2 fs steps; hills of 1.5 kJ/mol (initial height) and 20 deg width "
                "every 0.5 ps, bias factor 6, a 96-bin grid per dihedral; 10 ns (--quick: 2 ns). "
-               "gridbias/demo/run.py says why.\n" + _UNITS + "; angles in degrees.")
+               "gridbias/demo/settings.py says why.\n" + _UNITS + "; angles in degrees.")
     p.add_argument("--mode", choices=("2d", "reweight"), default="2d",
                    help="'2d': bias phi and psi; 'reweight': bias phi only and reweight to psi (default 2d)")
     p.add_argument("--quick", action="store_true", help="a shorter run (about a fifth of the length)")
@@ -810,7 +455,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("checkpoint", metavar="CHECKPOINT", help="the checkpoint file (.gbz)")
     p.add_argument("--log", metavar="CVLOG", help="the run's CV log (.gbl)")
     _add_frames(p)
-    _add_angles(p)
+    _add_angle_unit(p)
     p.add_argument("--min-depth", type=_positive, default=2.0, metavar="KBT",
                    help="a minimum counts as a basin if it is this many kBT below its lowest saddle "
                         "(default 2)")
@@ -843,7 +488,7 @@ def build_parser() -> argparse.ArgumentParser:
     when.add_argument("--time", type=float, metavar="PS",
                       help="the surface as it was at this simulated time, ps (default: the end)")
     when.add_argument("--hills", type=_count, metavar="N", help="the surface from the first N hills")
-    _add_angles(p)
+    _add_angle_unit(p)
     p.set_defaults(handler=_cmd_export)
 
     p = sub.add_parser(
@@ -872,7 +517,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--output", dest="outputs", nargs="+", metavar="FILE",
                    help="files to write: .csv, .npz, .png, .svg, .pdf")
     _add_frames(p)
-    _add_angles(p)
+    _add_angle_unit(p)
     p.set_defaults(handler=_cmd_reweight)
     return parser
 

@@ -16,8 +16,9 @@ import pytest
 
 import gridbias as gb
 from gridbias import analysis
-from gridbias.cli import ProgressLine, main
+from gridbias.cli import main
 from gridbias.cvlog import CVLogWriter
+from gridbias.progress import ProgressLine
 
 CENTRES = np.array([[-1.4, 1.2], [1.1, -0.8]])
 STRIDE_PS = 0.5

@@ -19,7 +19,7 @@ pytest.importorskip("openmm")
 pytest.importorskip("matplotlib")
 
 from gridbias import analysis  # noqa: E402
-from gridbias.cli import load_run, main, read_log, run_frames  # noqa: E402
+from gridbias.cli import main  # noqa: E402
 from gridbias.cvlog import read_cvlog  # noqa: E402
 from gridbias.demo.run import (  # noqa: E402
     CONFORMERS,
@@ -28,6 +28,7 @@ from gridbias.demo.run import (  # noqa: E402
     run_demo,
 )
 from gridbias.errors import CheckpointError  # noqa: E402
+from gridbias.runs import load_run, read_log, run_frames  # noqa: E402
 
 TINY_NS = 0.004  # 2,000 steps: 8 hills and 8 logged frames
 ALL_2D_FILES = {"run.gbz", "frames.gbl", "start.pdb", "report.txt", "surface.npz", "surface.csv",
@@ -196,7 +197,7 @@ def test_ctrl_c_then_rerun_continues_to_the_uninterrupted_result(tmp_path):
     again = _demo_process(interrupted, length_ns)
     out, err = again.communicate(timeout=300)
     assert again.returncode == 0, err
-    assert f"continuing from {interrupted / 'phi-psi' / 'run.gbz'} at {stopped.time_ps / 1000:g} ns" in out
+    assert f"continuing from {interrupted / 'phi-psi' / 'run.gbz'} at {stopped.time / 1000:g} ns" in out
     assert "Verdict:" in out
 
     straight = tmp_path / "straight"

@@ -197,7 +197,7 @@ def test_failed_checkpoint_is_logged_and_retried(tmp_path, monkeypatch, caplog):
     sim.step(100)  # the next checkpoint is written and holds every hill
     assert rep.checkpoint_failures == 0 and rep.last_checkpoint_step == 400
     other, sim2 = make_run(seed=2)
-    assert other.restore(sim2, ckpt)["step"] == 400
+    assert other.restore(sim2, ckpt).step == 400
     assert other.bias.n_hills == link.bias.n_hills == 20
     np.testing.assert_array_equal(other.bias.history.centers, link.bias.history.centers)
     np.testing.assert_array_equal(other.bias.values, link.bias.values)
@@ -258,7 +258,7 @@ def test_repeated_failures_stop_the_run_and_the_bias_can_still_be_saved(tmp_path
     monkeypatch.undo()  # space is freed: what was in memory is saved to another file and restores
     link.save(sim, tmp_path / "rescued.gbz")
     other, sim2 = make_run(seed=3)
-    assert other.restore(sim2, tmp_path / "rescued.gbz")["step"] == 300
+    assert other.restore(sim2, tmp_path / "rescued.gbz").step == 300
     assert other.bias.n_hills == 15
     np.testing.assert_array_equal(other.bias.values, link.bias.values)
     rep.close()
@@ -336,9 +336,9 @@ def test_second_run_is_refused_and_a_killed_runs_lock_is_taken_over(tmp_path):
     assert [p.name for p in tmp_path.iterdir() if ".tmp-" in p.name] == []
     sim.reporters.append(rep)
     meta = link.restore(sim, path)
-    assert meta["step"] >= 20 and link.bias.n_hills == meta["step"] // 20
+    assert meta.step >= 20 and link.bias.n_hills == meta.step // 20
     sim.step(100)
-    assert read_checkpoint(path)[0]["step"] == meta["step"] + 100
+    assert read_checkpoint(path)[0]["step"] == meta.step + 100
     rep.close()
     assert not Path(str(path) + ".lock").exists()
 
@@ -371,7 +371,7 @@ def test_blown_up_simulation_stops_without_a_hill_and_keeps_the_checkpoint(tmp_p
     other, sim2 = make_run(seed=4)
     rep2 = other.reporter(STRIDE, checkpoint=ckpt, checkpoint_every=40, log=log)
     sim2.reporters.append(rep2)
-    assert other.restore(sim2, ckpt)["step"] == 40 and other.bias.n_hills == 2
+    assert other.restore(sim2, ckpt).step == 40 and other.bias.n_hills == 2
     sim2.step(40)
     assert other.bias.n_hills == 4 and read_checkpoint(ckpt)[0]["step"] == 80
     assert np.isfinite(read_cvlog(log).data).all()
@@ -654,7 +654,7 @@ def test_code_in_metadata_text_is_data(tmp_path):
     path = _rewritten(raw, tmp_path, plant)
     link, sim = make_run()
     meta = link.restore(sim, path)
-    assert meta["platform"] == code and link.bias.n_hills == 10
+    assert meta.platform == code and link.bias.n_hills == 10
     assert not marker.exists()
 
 

@@ -127,7 +127,7 @@ def test_restore_on_other_platform_uses_portable_state(tmp_path, caplog):
     after = sim_cpu.context.getState(getPositions=True, getVelocities=True)
     assert np.array_equal(after.getPositions(asNumpy=True)._value, state.getPositions(asNumpy=True)._value)
     assert np.array_equal(after.getVelocities(asNumpy=True)._value, state.getVelocities(asNumpy=True)._value)
-    assert sim_cpu.currentStep == meta["step"] == 170
+    assert sim_cpu.currentStep == meta.step == 170
     assert after.getTime()._value == pytest.approx(state.getTime()._value)
     assert other.bias.n_hills == link.bias.n_hills == 8
     s = other.cv_values(sim_cpu)
@@ -215,8 +215,8 @@ def test_kill_while_saving_always_restorable(tmp_path):
         os.kill(pid, signal.SIGKILL)
         os.waitpid(pid, 0)
         meta = link.restore(sim, path)
-        steps_seen.add(meta["step"])
-        assert link.bias.n_hills == meta["step"] // 5
+        steps_seen.add(meta.step)
+        assert link.bias.n_hills == meta.step // 5
     assert len(steps_seen) >= 6
 
 

@@ -16,15 +16,13 @@ import numpy as np
 
 from ..bias import GridBias
 from ..errors import BlownUpError, CheckpointError, CVLogError, ParameterError
+from ..runs import RunCheckpoint, read_run_checkpoint, write_run_checkpoint
 from ._units import in_md_units
 from .forces import require_openmm, same_object
 from .observables import Observables
 
-__all__ = ["BiasLink", "BiasReporter", "CHECKPOINT_KIND", "DEFAULT_MAX_CHECKPOINT_FAILURES"]
+__all__ = ["BiasLink", "BiasReporter", "DEFAULT_MAX_CHECKPOINT_FAILURES"]
 
-#: The ``kind`` of a run checkpoint written by ``BiasLink.save`` (gridbias.checkpoint container).
-CHECKPOINT_KIND = "gridbias.openmm-run"
-_CHECKPOINT_VERSION = 1
 
 #: Checkpoints in a row that may fail to be written (disk full, I/O error) before the reporter stops the
 #: run. One or two failures are survived (a transient network file system error, space freed in time),
@@ -167,11 +165,9 @@ class BiasLink:
     def save(self, simulation, path) -> None:
         """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state.
 
-        The file (a gridbias.checkpoint container of kind ``CHECKPOINT_KIND``) is replaced atomically.
-        Nothing is written when positions or velocities are not finite (the last good file stays).
+        The file (a run checkpoint, layout in :mod:`gridbias.runs`) is replaced atomically. Nothing is
+        written when positions or velocities are not finite (the last good file stays).
         """
-        from ..checkpoint import write_checkpoint
-
         openmm = require_openmm()
         context = _context_of(simulation)
         self._bind(context)
@@ -181,30 +177,19 @@ class BiasLink:
         if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
             raise BlownUpError(f"positions or velocities are not finite at step {context.getStepCount()}: the "
                                 f"simulation has blown up; {os.fspath(path)!r} was not overwritten")
-        bias_meta, bias_arrays = self._bias.to_state()
-        meta = {
-            "version": _CHECKPOINT_VERSION,
-            "bias": bias_meta,
-            "cvs": self.describe_cvs(),
-            "labels": self.labels(),
-            "n_particles": self.system.getNumParticles(),
-            "platform": context.getPlatform().getName(),
-            "openmm_version": openmm.__version__,
-            "step": int(context.getStepCount()),
-            "time_ps": float(in_md_units(state.getTime())),
-            "engine": {"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
-                       "n_pending": self._n_pending, "name": self.name},
-            "written": _time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-        }
-        arrays = {f"bias.{k}": np.ascontiguousarray(v) for k, v in bias_arrays.items()}
-        arrays["engine.folded_values"] = self._folded_values
-        arrays["md.checkpoint"] = np.frombuffer(context.createCheckpoint(), dtype=np.uint8)
-        arrays["md.positions"] = positions
-        arrays["md.velocities"] = velocities
-        arrays["md.box"] = np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float)
-        write_checkpoint(path, meta, arrays, kind=CHECKPOINT_KIND)
+        bias_state, bias_arrays = self._bias.to_state()
+        write_run_checkpoint(path, RunCheckpoint(
+            path=os.fspath(path), step=int(context.getStepCount()), time=float(in_md_units(state.getTime())),
+            platform=context.getPlatform().getName(), labels=tuple(self.labels()), cvs=tuple(self.describe_cvs()),
+            n_particles=self.system.getNumParticles(), bias_state=bias_state, bias_arrays=bias_arrays,
+            engine={"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
+                    "n_pending": self._n_pending, "name": self.name},
+            folded_values=self._folded_values, md_checkpoint=context.createCheckpoint(),
+            positions=positions, velocities=velocities,
+            box=np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float),
+            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z")))
 
-    def restore(self, simulation, path) -> dict:
+    def restore(self, simulation, path) -> RunCheckpoint:
         """Continue from a checkpoint: restores the bias, the MD state and the engine's bias exactly.
 
         The engine's own checkpoint bytes are used when the platform matches; otherwise the portable
@@ -215,30 +200,24 @@ class BiasLink:
 
         Returns
         -------
-        dict : the checkpoint's metadata (step, time_ps, platform, ...).
+        gridbias.runs.RunCheckpoint
+            What the checkpoint held (``step``, ``time`` in ps, ``platform``, ...).
         """
-        from ..checkpoint import read_checkpoint
-
         context = _context_of(simulation)
-        meta, arrays = read_checkpoint(path, kind=CHECKPOINT_KIND)
+        checkpoint = read_run_checkpoint(path)
+        self._check_compatible(checkpoint, path)
         try:
-            self._check_compatible(meta, path)
-            state = {k[5:]: v for k, v in arrays.items() if k.startswith("bias.")}
             # A bias that restores itself (a SharedBias of walkers: collective, stays shared) does so.
             restored = getattr(self._bias, "restored", None)
-            bias = restored(meta["bias"], state) if callable(restored) else GridBias.from_state(meta["bias"], state)
-            folded = arrays["engine.folded_values"]
-            n_folded = int(meta["engine"]["n_folded"])
-            saved_platform = meta["platform"]
-            int(meta["step"]), float(meta["time_ps"])  # used below; checked before anything changes
-            for name in ("md.checkpoint", "md.positions", "md.velocities", "md.box"):
-                arrays[name]
+            bias = (restored(checkpoint.bias_state, checkpoint.bias_arrays) if callable(restored)
+                    else GridBias.from_state(checkpoint.bias_state, checkpoint.bias_arrays))
         except CheckpointError:
             raise
         except KeyError as exc:
             raise CheckpointError(f"{path}: checkpoint is incomplete (missing {exc})") from exc
         except (TypeError, ValueError, AttributeError) as exc:
             raise CheckpointError(f"{path}: checkpoint metadata is malformed ({type(exc).__name__}: {exc})") from exc
+        folded, n_folded = checkpoint.folded_values, checkpoint.engine["n_folded"]
         diff = self._bias.describe_difference(bias)
         if diff:
             raise CheckpointError(f"{path}: the bias {diff} (this run vs checkpoint)")
@@ -246,9 +225,9 @@ class BiasLink:
             raise CheckpointError(f"{path}: engine table of shape {folded.shape} / n_folded={n_folded} does not "
                                   f"fit the bias (grid shape {bias.grid.shape}, {bias.n_hills} hills)")
         platform = context.getPlatform().getName()
-        if saved_platform == platform:
+        if checkpoint.platform == platform:
             try:
-                context.loadCheckpoint(arrays["md.checkpoint"].tobytes())
+                context.loadCheckpoint(checkpoint.md_checkpoint)
                 exact = True
             except Exception as exc:  # another OpenMM build or CPU: fall back to the portable state
                 _log.warning("%s: the engine could not load its own checkpoint (%s); continuing from the "
@@ -256,16 +235,16 @@ class BiasLink:
                 exact = False
         else:
             _log.warning("%s was written on the %s platform and is restored on %s: continuing from the portable "
-                         "state (positions, velocities, box, step, time), not bit-for-bit", path, meta["platform"],
-                         platform)
+                         "state (positions, velocities, box, step, time), not bit-for-bit", path,
+                         checkpoint.platform, platform)
             exact = False
         if not exact:
-            self._load_portable(context, meta, arrays)
+            self._load_portable(context, checkpoint)
         self._bias._adopt(bias)
         self._install(context, folded, n_folded)
         for rep in list(self._reporters):
-            rep._restored(int(meta["step"]))
-        return meta
+            rep._restored(checkpoint.step)
+        return checkpoint
 
     def _install(self, context, folded, n_folded):
         """Put exactly the engine state of the checkpoint into ``context``: table + pending hills."""
@@ -286,15 +265,13 @@ class BiasLink:
         self._n_folded = n_folded
         self._n_pending = pending
 
-    def _check_compatible(self, meta, path):
-        if int(meta["version"]) > _CHECKPOINT_VERSION:
-            raise CheckpointError(f"{path}: written by a newer gridbias (format {meta['version']}); upgrade")
+    def _check_compatible(self, checkpoint, path):
         n = self.system.getNumParticles()
-        if int(meta["n_particles"]) != n:
-            raise CheckpointError(f"{path} was written for a System of {meta['n_particles']} particles; this "
+        if checkpoint.n_particles != n:
+            raise CheckpointError(f"{path} was written for a System of {checkpoint.n_particles} particles; this "
                                   f"System has {n}")
         mine = self.describe_cvs()
-        theirs = meta["cvs"]
+        theirs = checkpoint.cvs
         if len(theirs) != len(mine):
             raise CheckpointError(f"{path} holds {len(theirs)} CVs; this link has {len(mine)}")
         for i, (a, b) in enumerate(zip(mine, theirs)):
@@ -302,13 +279,12 @@ class BiasLink:
                 raise CheckpointError(f"{path}: CV {i} differs: checkpoint {b}, this link {a}")
 
     @staticmethod
-    def _load_portable(context, meta, arrays):
-        box = arrays["md.box"]
-        context.setPeriodicBoxVectors(*[tuple(float(x) for x in row) for row in box])
-        context.setPositions(arrays["md.positions"])
-        context.setVelocities(arrays["md.velocities"])
-        context.setTime(float(meta["time_ps"]))
-        context.setStepCount(int(meta["step"]))
+    def _load_portable(context, checkpoint):
+        context.setPeriodicBoxVectors(*[tuple(float(x) for x in row) for row in checkpoint.box])
+        context.setPositions(checkpoint.positions)
+        context.setVelocities(checkpoint.velocities)
+        context.setTime(checkpoint.time)
+        context.setStepCount(checkpoint.step)
 
 
 def _context_of(simulation):
