@@ -33,7 +33,7 @@ def test_frames_by_time_match_within_the_tolerance():
 
 @pytest.mark.parametrize("frames, message", [
     (np.arange(1, 101) * 750, r"between records \(the frame interval is not a multiple of the log interval"),
-    (np.arange(1, 121) * 500, r"20 of 120 frames .* after the log's last record \(the trajectory is longer"),
+    (np.arange(1, 121) * 500, r"20 of 120 frames .* after the log's last record \(the frames run past"),
     (np.r_[100, np.arange(1, 10) * 500], r"1 of 10 frames .*first: frame 0 at step 100.* before its first"),
 ])
 def test_frames_without_a_record_are_refused_saying_why(frames, message):

@@ -7,6 +7,7 @@ and the reweighted averages the exact expectation values of the same model.
 """
 
 import math
+import re
 
 import numpy as np
 import pytest
@@ -219,7 +220,7 @@ def test_frames_that_do_not_line_up_are_refused(biased_run, tmp_path):
     short = tmp_path / "short.gbl"
     with CVLogWriter(short, log.columns, log.units, log.metadata) as writer:
         writer.write(log.data[: log.n_records // 2])
-    with pytest.raises(ParameterError, match=r"after the log's last record \(the trajectory is longer than"):
+    with pytest.raises(ParameterError, match=r"after the log's last record \(the frames run past the log"):
         trajectories.load_frames(folder / "run.dcd", read_cvlog(short), top=_topology())
     with pytest.raises(ParameterError, match="not a multiple of the log interval"):
         analysis.weights_at_steps(weights, log.column("step"), np.arange(1, 50) * 150)
@@ -252,3 +253,73 @@ def test_observable_names_must_not_clash(tmp_path):
     with pytest.raises(ParameterError, match="observables are written to the CV log: give log="):
         link.reporter(10, observables=[gbo.coordinate(0, "y", name="y")])
     assert not (tmp_path / "run.gbl").exists()  # nothing written by a refused call
+
+
+# ------------------------------------------------------------------------------ gridbias reweight --values
+@pytest.fixture(scope="module")
+def short_run(tmp_path_factory):
+    """A short biased run with its bias saved, the log, and z of every DCD frame (computed afterwards)."""
+    folder = tmp_path_factory.mktemp("short")
+    link = run_biased(folder, 5, n_steps=60_000)
+    link.bias.save(folder / "bias.gbz")
+    log = read_cvlog(folder / "run.gbl")
+    frames = trajectories.load_frames(folder / "run.dcd", log, top=_topology())
+    return folder, frames.steps, frames.trajectory.xyz[:, 0, 2].astype(float)
+
+
+def _reweight(capsys, folder, values_file, *extra):
+    from gridbias.cli import main
+
+    code = main(["reweight", str(folder / "bias.gbz"), str(folder / "run.gbl"), "--columns", "x",
+                 "--values", str(values_file), *extra])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_reweight_command_takes_values_from_csv_and_npy(short_run, capsys, tmp_path):
+    folder, steps, z = short_run
+    csv = tmp_path / "z.csv"
+    np.savetxt(csv, np.column_stack([steps, z]), delimiter=",", header="step,z[nm]", comments="")
+    out_csv = tmp_path / "fz.csv"
+    code, out, err = _reweight(capsys, folder, csv, "--bins", "20", "--output", str(out_csv))
+    assert code == 0, err
+    assert f"({steps.size} frames)" in out and "unbiased average of z:" in out and " nm" in out
+    table = np.loadtxt(out_csv, delimiter=",", skiprows=1)
+    assert table.shape[0] == 20
+    pairs = tmp_path / "z.npy"
+    np.save(pairs, np.column_stack([steps, z]))
+    code, out_npy, err = _reweight(capsys, folder, pairs, "--bins", "20")
+    assert code == 0, err
+    def numbers(text):  # the average and the table, without units (a .npy file has none)
+        return re.findall(r"average of z: (\S+)", text) + [line.split()[1:] for line in text.splitlines()
+                                                           if re.match(r"\s+-?\d", line)]
+
+    assert numbers(out_npy) == numbers(out)
+    code, out, err = _reweight(capsys, folder, csv, "--along", "x", "--bins", "12")  # 2-D: x and z
+    assert code == 0, err
+    assert "free energy along x, z" in out
+
+
+@pytest.mark.parametrize("make, message", [
+    (lambda steps, z: ("csv", np.column_stack([steps + 50, z])), "does not fit the CV log: .*between record"),
+    (lambda steps, z: ("csv", np.column_stack([np.r_[steps, steps[-1] + 200], np.r_[z, 0.0]])),
+     r"after the log's last record"),
+    (lambda steps, z: ("csv", np.column_stack([steps, np.where(np.arange(z.size) == 3, np.nan, z)])),
+     "row 3 has the value nan; every value must be finite"),
+    (lambda steps, z: ("npy", z), r"holds \d+ values but the CV log has \d+ records"),
+    (lambda steps, z: ("npy", np.column_stack([steps[::-1], z])), "the steps must increase"),
+])
+def test_reweight_command_refuses_values_that_do_not_fit_the_log(short_run, capsys, tmp_path, make, message):
+    folder, steps, z = short_run
+    kind, data = make(steps, z)
+    path = tmp_path / f"bad.{kind}"
+    if kind == "csv":
+        np.savetxt(path, data, delimiter=",", header="step,z", comments="")
+    else:
+        np.save(path, data)
+    output = tmp_path / "never.csv"
+    code, out, err = _reweight(capsys, folder, path, "--output", str(output))
+    assert code == 2
+    assert err.count("\n") == 1 and str(path) in err
+    assert re.search(message, err), err
+    assert not output.exists()  # nothing written

@@ -37,8 +37,8 @@ def _describe_misses(missing, frame_keys, record_keys, unit) -> str:
     before = int((frame_keys[missing] < first).sum())
     why = []
     if after:
-        why.append(f"{after} after the log's last record (the trajectory is longer than the log: frames from "
-                   "after a restart cut, or the log of another run)")
+        why.append(f"{after} after the log's last record (the frames run past the log: a trajectory longer "
+                   "than its log, frames from after a restart cut, or the log of another run)")
     if before:
         why.append(f"{before} before its first record")
     between = missing.size - after - before
