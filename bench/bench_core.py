@@ -30,7 +30,7 @@ def test_deposit_api(benchmark, points):
 @pytest.mark.benchmark(group="deposit 2-D 129^2")
 def test_deposit_bare_kernel(benchmark):
     bias = _bias()
-    coef, ndim, lower3, spacing3, bins3, periodic3 = bias.kernel_args()
+    coef, ndim, lower3, spacing3, bins3, periodic3 = bias._kernel_args()
     centre = np.array([0.3, -0.2])
     benchmark(lambda: _kernels.deposit_hill(coef, ndim, lower3, spacing3, bins3, periodic3, centre,
                                             bias.sigma, 1e-9, bias.cutoff))

@@ -31,9 +31,8 @@ import warnings
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(__file__))
-from _timing import markdown_table  # noqa: E402
-
 import openmm as mm  # noqa: E402
+from _timing import markdown_table  # noqa: E402
 from openmm import app, unit  # noqa: E402
 
 import gridbias as gb  # noqa: E402
@@ -129,7 +128,7 @@ def deposit_components(runs, rounds, block=200):
             centre = [0.0] * link.bias.ndim
             slot = fastest(lambda: link._engine.set_slot(context, 0, centre, 0.0), 1) if link.pending_hills \
                 else 0.0
-            best[k] = [min(x, y) for x, y in zip(best[k], (step, push, python, slot))]
+            best[k] = [min(x, y) for x, y in zip(best[k], (step, push, python, slot), strict=True)]
     for k in runs:
         best[k][1] -= best[k][0]
     return best

@@ -34,6 +34,7 @@ import warnings
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(__file__))
+import openmm as mm  # noqa: E402
 from _timing import markdown_table  # noqa: E402
 from bench_engine import (  # noqa: E402
     Run,
@@ -45,8 +46,6 @@ from bench_engine import (  # noqa: E402
     platform,
     villin_in_water,
 )
-
-import openmm as mm  # noqa: E402
 
 import gridbias as gb  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
@@ -228,10 +227,10 @@ def section_water(quick):
         r = Run(top, pos, system, plat, cvs=cvs, bias=dipeptide_bias(cvs, bins), deposit=False)
         r.sim.step(2)
         link, context = r.link, r.sim.context
-        push = fastest(lambda: link._engine.push_table(context, link.bias.values), 3)
+        push = fastest(lambda link=link, context=context: link._engine.push_table(context, link.bias.values), 3)
         probe = link.bias.copy()
-        python = fastest(lambda: probe.deposit(link.cv_values(r.sim)), 3)
-        slot = fastest(lambda: link._engine.set_slot(context, 0, [0.0, 0.0], 0.0), 5)
+        python = fastest(lambda link=link, probe=probe, sim=r.sim: probe.deposit(link.cv_values(sim)), 3)
+        slot = fastest(lambda link=link, context=context: link._engine.set_slot(context, 0, [0.0, 0.0], 0.0), 5)
         deposit = cost_per_deposit(push, python, slot, 0.0, PENDING, STRIDE)
         overhead = (force * STRIDE + deposit) / (t_md * STRIDE)
         n = table_nodes(2, bins)
@@ -298,14 +297,14 @@ def plot_push(records, water, path):
             sel = sorted(r[2:] for r in records if r[0] == d and r[1] == route)
             if not sel:
                 continue
-            n, push, fast, whole = (np.array(c) for c in zip(*sel))
+            n, push, fast, whole = (np.array(c) for c in zip(*sel, strict=True))
             left.loglog(n, push * 1e3, marker="o", linestyle=style, color=colours[d])
             if route == "compound":
                 right.loglog(n, whole * 1e3, marker="o", linestyle="-", color=colours[d])
                 right.loglog(n, fast * 1e3, marker="o", markerfacecolor="white", linestyle=":",
                              color=colours[d])
     if water:
-        n, push = zip(*sorted((c[0], c[1]) for c in water.values()))
+        n, push = zip(*sorted((c[0], c[1]) for c in water.values()), strict=True)
         left.loglog(n, np.array(push) * 1e3, marker="s", color="black", linestyle="-")
     guide = np.logspace(3.5, 6.7, 10)
     left.loglog(guide, 0.4e-3 * guide, color="0.6", linewidth=0.8)

@@ -37,7 +37,7 @@ def bench_targets(rng, quick):
     pts = random_points(rng, 4000, 2) * 0.9
     it = iter(np.tile(pts, (50, 1)))
     t_deposit = per_call_seconds(lambda: bias.deposit(next(it)), calls=300)
-    coef, ndim, lower3, spacing3, bins3, periodic3 = bias.kernel_args()
+    coef, ndim, lower3, spacing3, bins3, periodic3 = bias._kernel_args()
     centre = np.array([0.3, -0.2])
     t_kernel = per_call_seconds(lambda: _kernels.deposit_hill(coef, ndim, lower3, spacing3, bins3, periodic3,
                                                               centre, bias.sigma, 1e-9, bias.cutoff), calls=300)

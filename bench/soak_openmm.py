@@ -14,7 +14,7 @@ size, the CV log's size, the resident memory and the wall time of the interval, 
 - CV log bytes = header + 40 B per record (5 float64 columns: step, time, phi, psi, bias).
 
 It exits with status 1 if either check fails. Timings (steps/s early vs late) are reported, not asserted.
-tests/test_faults_run.py runs the same byte checks on a short run in CI.
+tests/engine/test_openmm_run_faults.py runs the same byte checks on a short run in CI.
 """
 
 import argparse
@@ -30,9 +30,8 @@ import warnings
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(__file__))
-from _timing import markdown_table  # noqa: E402
-
 import openmm as mm  # noqa: E402
+from _timing import markdown_table  # noqa: E402
 from openmm import app  # noqa: E402
 
 from gridbias import openmm as gbo  # noqa: E402

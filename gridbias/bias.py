@@ -227,11 +227,11 @@ class GridBias:
                 "Put walls about 3 sigma inside the grid edges.", stacklevel=3)
 
     # -- deposition ---------------------------------------------------------------------------
-    def kernel_args(self):
+    def _kernel_args(self):
         """(coef4, ndim, lower3, spacing3, bins3, periodic3) for ``gridbias._kernels.eval_point``."""
         return (self._coef, self.ndim, self._lower3, self._spacing3, self._bins3, self._periodic3)
 
-    def wall_args(self):
+    def _wall_args(self):
         """(cv, bound, k, sign, power) arrays for ``gridbias._kernels.wall_point``."""
         return (self._wall_cv, self._wall_bound, self._wall_k, self._wall_sign, self._wall_power)
 
@@ -242,7 +242,7 @@ class GridBias:
         s = self._point(s)
         if not self._grid.contains(s):
             return 0.0
-        return _kernels.hill_height(*self.kernel_args(), s, self._height, self._wt_inverse)
+        return _kernels.hill_height(*self._kernel_args(), s, self._height, self._wt_inverse)
 
     def deposit(self, s, *, time=None) -> float:
         """Deposit one hill at the CV point s (d,). Returns the height used, kJ/mol.
@@ -492,18 +492,11 @@ class GridBias:
         """Read a bias written by ``save``; verifies format, version and checksum.
 
         A run checkpoint of the OpenMM adapter holds more than a bias: ``gridbias.runs.load_run`` opens
-        that one (and this kind too).
+        that one (and this kind too); the error for one says so.
         """
         from .checkpoint import read_checkpoint
-        from .runs import CHECKPOINT_KIND
 
-        try:
-            meta, arrays = read_checkpoint(path, kind=_STATE_KIND)
-        except CheckpointError as exc:
-            if f"holds kind {CHECKPOINT_KIND!r}" in str(exc):
-                raise CheckpointError(f"{exc}: it is a run checkpoint of the OpenMM adapter; open it with "
-                                      "gridbias.runs.load_run(path), whose .bias is the GridBias") from exc
-            raise
+        meta, arrays = read_checkpoint(path, kind=_STATE_KIND)
         return cls.from_state(meta, arrays)
 
     def __repr__(self):

@@ -66,6 +66,13 @@ _KIND_RE = re.compile(r"[A-Za-z0-9_.\-]+")
 _NAME_RE = re.compile(r"(?!__)[A-Za-z0-9_][A-Za-z0-9_.\-]{0,199}")
 _ARRAY_KINDS = "biufc"  # bool, signed, unsigned, float, complex
 _ZIP_DATE = (1980, 1, 1, 0, 0, 0)  # fixed member timestamps: same content, same bytes
+# What opens each kind gridbias writes, for the message of a reader that expected another kind.
+_READERS = {
+    "gridbias.bias": "; it is a bias checkpoint: open it with gridbias.GridBias.load(path) or "
+                     "gridbias.runs.load_run(path)",
+    "gridbias.openmm-run": "; it is a run checkpoint of the OpenMM adapter: open it with "
+                           "gridbias.runs.load_run(path), whose .bias is the GridBias",
+}
 
 # ---------------------------------------------------------------------------------------------- write/read
 def write_checkpoint(path, meta: dict, arrays: dict, *, kind: str) -> None:
@@ -198,7 +205,8 @@ def read_checkpoint(path, *, kind: str | None = None) -> tuple[dict, dict]:
             kind_len = _check_header(path, head, size)
             stored_kind = _read_kind(path, f.read(kind_len), kind_len)
             if kind is not None and stored_kind != kind:
-                raise CheckpointError(f"checkpoint {path!r} holds kind {stored_kind!r}, expected {kind!r}")
+                raise CheckpointError(f"checkpoint {path!r} holds kind {stored_kind!r}, expected {kind!r}"
+                                      f"{_READERS.get(stored_kind, '')}")
             payload = f.read()
     except FileNotFoundError as exc:
         raise CheckpointError(f"checkpoint file {path!r} does not exist") from exc

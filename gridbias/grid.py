@@ -113,7 +113,7 @@ class Grid:
     @property
     def shape(self) -> tuple:
         """Node counts per axis: ``bins`` on periodic axes, ``bins + 1`` otherwise."""
-        return tuple(int(b) if p else int(b) + 1 for b, p in zip(self._bins, self._periodic))
+        return tuple(int(b) if p else int(b) + 1 for b, p in zip(self._bins, self._periodic, strict=True))
 
     @property
     def size(self) -> int:

@@ -197,7 +197,7 @@ def _mark_basins(ax, basins, scales, ndim, curve=None, shown=None):
         coords, labels = _closed_periodic(basins.grid, basins.grid.axes, basins.labels.astype(float))
         if shown is not None:
             labels = np.where(shown, labels, np.nan)
-        x, y = (c * s for c, s in zip(coords, scales))
+        x, y = (c * s for c, s in zip(coords, scales, strict=True))
         ax.contour(x, y, np.ma.masked_invalid(labels.T), levels=np.arange(basins.n_basins - 1) + 0.5,
                    colors="white", linewidths=0.9, linestyles="dotted")
 
@@ -263,7 +263,7 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
         if basins is not None:
             _mark_basins(ax, basins, scales, 1, (np.asarray(coords[0]), y))
         return figure
-    x, y = (np.asarray(c) * s for c, s in zip(coords, scales))
+    x, y = (np.asarray(c) * s for c, s in zip(coords, scales, strict=True))
     data = fes * factor
     step = level_step if level_step is not None else kT * factor
     if max_free_energy is None:
@@ -391,7 +391,7 @@ def plot_cv_timeseries(times, cvs, *, ax=None, names=(), angular=None, angle_uni
 
 
 def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None = None,
-                      max_fraction: float | None = None):
+                      max_height_fraction: float | None = None):
     """Plot hill heights against simulated time on a log scale.
 
     Parameters
@@ -402,7 +402,7 @@ def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None =
     ax : matplotlib Axes, keyword-only, optional
     initial_height : float, kJ/mol, keyword-only, optional
         Drawn as a reference line.
-    max_fraction : float, keyword-only, optional
+    max_height_fraction : float, keyword-only, optional
         With ``initial_height``: the height-decay threshold of the convergence verdict, drawn as a line.
 
     Returns
@@ -420,9 +420,9 @@ def plot_hill_heights(times, heights, *, ax=None, initial_height: float | None =
     if initial_height is not None:
         ax.axhline(initial_height, color=_INK, linewidth=0.8, alpha=0.5, linestyle="--",
                    label="initial height")
-        if max_fraction is not None:
-            ax.axhline(max_fraction * initial_height, color=_ACCENT, linewidth=1.0,
-                       label=f"{100 * max_fraction:g}% of the initial height")
+        if max_height_fraction is not None:
+            ax.axhline(max_height_fraction * initial_height, color=_ACCENT, linewidth=1.0,
+                       label=f"{100 * max_height_fraction:g}% of the initial height")
     ax.set_yscale("log")
     ax.set_xlabel("simulated time (ps)")
     ax.set_ylabel("hill height (kJ/mol)")

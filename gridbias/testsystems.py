@@ -380,7 +380,7 @@ class Trajectory:
 # ---------------------------------------------------------------------------------------------------
 # Python drivers
 # ---------------------------------------------------------------------------------------------------
-# Kernel arguments that stand for "no bias" (same dtypes as GridBias.kernel_args / wall_args, so the
+# Kernel arguments that stand for "no bias" (same dtypes as GridBias._kernel_args / _wall_args, so the
 # compiled kernel is shared by biased and unbiased runs).
 _NO_BIAS = (np.zeros((1, 1, 1, 1)), 1, np.zeros(3), np.ones(3), np.ones(3, dtype=np.int64),
             np.zeros(3, dtype=np.bool_))
@@ -514,7 +514,7 @@ def run_langevin(potential, x0, *, n_steps, dt, friction, temperature, rng, mass
         grid_args, wall_args, cv_index = _NO_BIAS, _NO_WALLS, np.zeros(0, dtype=np.int64)
     else:
         cv_index = _check_bias(potential, bias, cv)
-        grid_args, wall_args = bias.kernel_args(), bias.wall_args()
+        grid_args, wall_args = bias._kernel_args(), bias._wall_args()
     state = _Integrator(potential, x0, v0, n_steps, dt, friction, mass, temperature, rng, record_every)
     state.advance(n_steps, grid_args, wall_args, cv_index, bias is not None)
     return state.trajectory()
@@ -561,6 +561,6 @@ def run_metadynamics(potential, bias, x0, *, n_deposits, stride, dt, friction, r
     state = _Integrator(potential, x0, v0, n_deposits * stride, dt, friction, mass, bias.temperature, rng,
                         record_every)
     for _ in range(n_deposits):
-        state.advance(stride, bias.kernel_args(), bias.wall_args(), cv_index, True)
+        state.advance(stride, bias._kernel_args(), bias._wall_args(), cv_index, True)
         bias.deposit(state.x[cv_index], time=state.step * state.dt)
     return state.trajectory()

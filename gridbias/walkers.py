@@ -48,7 +48,7 @@ Checkpoints
 - Core loop: ``bias.save(path)`` and ``SharedBias.load(path)`` (both collective; the file records the
   number of walkers and exchanges) plus each walker's own dynamics state. Write the walkers' states first,
   keeping each one's previous file, then ``bias.save`` as the commit: a set of files of one exchange then
-  always exists, even after a kill in between (tests/mpi/walkers_langevin.py does this).
+  always exists, even after a kill in between (tests/walkers/mpi/walkers_langevin.py does this).
 """
 
 from __future__ import annotations
@@ -193,7 +193,7 @@ class SharedBias(GridBias):
     the one bias all walkers feel; the 2006 multiple-walker paper predates well-tempered metadynamics and the
     2008 paper does not say which bias is meant, so this is our documented choice. With it the shared bias
     converges to ``-(1 - 1/gamma) F`` as for one walker, reached after about ``1/n_walkers`` as many steps
-    per walker (measured: tests/test_walkers_mpi.py, bench/README.md).
+    per walker (measured: tests/walkers/test_walkers_mpi.py, bench/README.md).
 
     Hill times are each walker's own simulation time; with the same time step and stride they agree.
     """

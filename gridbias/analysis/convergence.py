@@ -177,7 +177,7 @@ def transition_criterion(core_labels, n_basins: int, *,
                      counted.total >= needed, detail)
 
 
-def height_criterion(bias, *, max_fraction: float = DEFAULT_MAX_HEIGHT_FRACTION,
+def height_criterion(bias, *, max_height_fraction: float = DEFAULT_MAX_HEIGHT_FRACTION,
                      n_recent: int = DEFAULT_RECENT_HILLS) -> Criterion:
     """Have well-tempered hills decayed to a small fraction of the initial height?
 
@@ -185,7 +185,7 @@ def height_criterion(bias, *, max_fraction: float = DEFAULT_MAX_HEIGHT_FRACTION,
     ----------
     bias : GridBias
         Well-tempered (``bias_factor`` set).
-    max_fraction : float in (0, 1), keyword-only, default 0.05
+    max_height_fraction : float in (0, 1), keyword-only, default 0.05
     n_recent : int, keyword-only, default 10
         The current height is the mean of the last ``n_recent`` hills (one hill depends on where the CV
         happened to be).
@@ -197,7 +197,7 @@ def height_criterion(bias, *, max_fraction: float = DEFAULT_MAX_HEIGHT_FRACTION,
     """
     if bias.bias_factor is None:
         raise ParameterError("height_criterion applies to well-tempered runs only (bias_factor is None)")
-    fraction = as_fraction("max_fraction", max_fraction, allow_zero=False)
+    fraction = as_fraction("max_height_fraction", max_height_fraction, allow_zero=False)
     n_recent = as_count("n_recent", n_recent, 1)
     heights = np.asarray(bias.history.heights)
     if heights.size == 0:
@@ -264,7 +264,7 @@ def assess_convergence(bias, basins: Basins, *, frame_times=None, frame_cvs=None
     ]
     notes = [f"transitions counted along {source}"]
     if bias.bias_factor is not None:
-        criteria.append(height_criterion(bias, max_fraction=max_height_fraction))
+        criteria.append(height_criterion(bias, max_height_fraction=max_height_fraction))
     else:
         notes.append("hill-height decay does not apply to standard metadynamics (constant height)")
     return ConvergenceVerdict(tuple(criteria), tuple(notes))

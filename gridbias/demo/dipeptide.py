@@ -14,7 +14,7 @@ Force-field settings (amber14-all.xml from OpenMM's package data, ff14SB protein
   (common practice for Amber force fields). They do not touch the backbone dihedrals the bias acts on.
   Measured here (velocity Verlet, 10 ps): std(total energy) / std(kinetic energy) is 0.07 with HBonds at
   2 fs, 0.22 for the flexible model at 2 fs and 0.04 for it at 1 fs, so HBonds at 2 fs conserves energy
-  about as well as the flexible model at half the step; ``tests/test_demo_system.py`` keeps checking it.
+  about as well as the flexible model at half the step; ``tests/engine/test_dipeptide_system.py`` keeps checking it.
 
 Cautions: ff14SB was fitted for use with explicit water; in vacuum it gives a plausible but force-field-
 specific surface (no solvent screening, so the intramolecular hydrogen bond of the C7 conformers is

@@ -121,7 +121,7 @@ def _compare_profiles(reweighted, counts, reference, kT):
 _MAX_DOTS = 5000  # frames drawn per CV panel: more only blacken the panel
 
 
-def _convergence_figure(plots, differences, bias, t, cvs, names, window_fraction, max_fraction):
+def _convergence_figure(plots, differences, bias, t, cvs, names, window_fraction, max_height_fraction):
     """Basin differences against time, hill heights, and each biased CV along the run, one panel each."""
     d = cvs.shape[1]
     figure, axes = plots.new_figure(2 + d, 1, width=7.0, height=6.4 + 2.0 * d)
@@ -138,7 +138,7 @@ def _convergence_figure(plots, differences, bias, t, cvs, names, window_fraction
     times, heights = np.asarray(bias.history.times), np.asarray(bias.history.heights)
     step = max(1, times.size // _MAX_DOTS)
     plots.plot_hill_heights(times[::step], heights[::step], ax=axes[1], initial_height=bias.height,
-                            max_fraction=max_fraction)
+                            max_height_fraction=max_height_fraction)
     axes[1].legend(frameon=True, framealpha=1.0, edgecolor="none", loc="upper right", fontsize="small")
     axes[1].set_title("hill heights" + (f" (every {step}th hill)" if step > 1 else ""), loc="left",
                       fontsize="medium")

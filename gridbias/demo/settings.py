@@ -59,7 +59,7 @@ SUBFOLDERS = {"2d": "phi-psi", "reweight": "phi-only"}
 
 #: Potential-energy minima (phi, psi) in degrees of this force field (amber14/ff14SB, vacuum), found with
 #: OpenMM's minimiser from the three classic starting conformations; used to name the basins found.
-#: tests/test_demo_run.py recomputes them.
+#: tests/cli/test_demo_run.py recomputes them.
 CONFORMERS = {"C7eq": (-75.0, 54.0), "C5": (-152.0, 160.0), "C7ax": (61.0, -41.0)}
 
 #: Files the demo writes (and --fresh removes); nothing else in the folder is touched.

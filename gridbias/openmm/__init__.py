@@ -41,11 +41,11 @@ import numpy as np
 from ..bias import GridBias
 from ..errors import ParameterError
 from ..grid import Grid
+from ..runs import CHECKPOINT_KIND
 from ..walls import Wall
 from . import cvs as _cvs
 from ._units import cv_unit_name, in_md_units, is_quantity, per_cv
 from .forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
-from ..runs import CHECKPOINT_KIND
 from .link import DEFAULT_MAX_CHECKPOINT_FAILURES, BiasLink, BiasReporter
 
 __all__ = [

@@ -399,12 +399,12 @@ class DistanceCombination(CollectiveVariable):
     def expression(self, symbol):
         index = {a: k for k, a in enumerate(self.atoms)}
         return "+".join(f"({c!r})*distance({symbol(index[i])},{symbol(index[j])})"
-                        for (i, j), c in zip(self.pairs, self.coefficients))
+                        for (i, j), c in zip(self.pairs, self.coefficients, strict=True))
 
     def value(self, pos_n3, box):
         box = _box_tuple(box)
         total = 0.0
-        for (i, j), c in zip(self.pairs, self.coefficients):
+        for (i, j), c in zip(self.pairs, self.coefficients, strict=True):
             p, q = _points_of(pos_n3, (i, j))
             d = _diff(p, q, box)
             total += c * math.sqrt(_dot(d, d))

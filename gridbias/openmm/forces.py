@@ -85,7 +85,7 @@ class TableLayout:
         self.maximum = np.array(maximum)
         strides = np.cumprod((1,) + tuple(grid.shape[::-1]))[:-1][::-1]  # C-order strides of the core array
         mesh = np.meshgrid(*node_index, indexing="ij")
-        flat = sum(np.asarray(a, dtype=np.int64) * int(s) for a, s in zip(mesh, strides))
+        flat = sum(np.asarray(a, dtype=np.int64) * int(s) for a, s in zip(mesh, strides, strict=True))
         self.index_t = np.ascontiguousarray(flat.ravel(order="F"))
         self.ndim = d
 

@@ -274,7 +274,7 @@ class BiasLink:
         theirs = checkpoint.cvs
         if len(theirs) != len(mine):
             raise CheckpointError(f"{path} holds {len(theirs)} CVs; this link has {len(mine)}")
-        for i, (a, b) in enumerate(zip(mine, theirs)):
+        for i, (a, b) in enumerate(zip(mine, theirs, strict=True)):
             if a != b:
                 raise CheckpointError(f"{path}: CV {i} differs: checkpoint {b}, this link {a}")
 

@@ -48,7 +48,7 @@ def reference_force(cv, periodic_box):
     elif kind == "distance_combination":
         f = mm.CustomBondForce("c*r")
         f.addPerBondParameter("c")
-        for (i, j), c in zip(cv.pairs, cv.coefficients):
+        for (i, j), c in zip(cv.pairs, cv.coefficients, strict=True):
             f.addBond(i, j, [c])
     if kind != "coordinate":
         f.setUsesPeriodicBoundaryConditions(periodic_box)

@@ -126,7 +126,7 @@ def test_cv_timeseries_one_panel_per_cv(tmp_path, rng):
 def test_hill_heights_on_a_log_axis_with_the_threshold(tmp_path):
     times = np.arange(1, 101, dtype=float)
     heights = 2.0 / times
-    figure = plots.plot_hill_heights(times, heights, initial_height=2.0, max_fraction=0.05)
+    figure = plots.plot_hill_heights(times, heights, initial_height=2.0, max_height_fraction=0.05)
     ax = figure.axes[0]
     assert ax.get_yscale() == "log"
     np.testing.assert_allclose(ax.lines[0].get_ydata(), heights)

@@ -169,7 +169,7 @@ def test_single_point_and_batch_agree(rng):
     bias, *_ = make_2d(rng, n_hills=50)
     pts = rng.uniform(-0.9, 0.9, (10, 2))
     energy, grad = bias.evaluate(pts)
-    for p, e, g in zip(pts, energy, grad):
+    for p, e, g in zip(pts, energy, grad, strict=True):
         e1, g1 = bias.evaluate(p)
         assert isinstance(e1, float) and g1.shape == (2,)
         assert e1 == e and np.array_equal(g1, g)

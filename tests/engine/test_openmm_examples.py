@@ -17,7 +17,7 @@ pytest.importorskip("openmm")
 from gridbias.checkpoint import read_checkpoint  # noqa: E402
 
 pytestmark = pytest.mark.openmm
-EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
+EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
 
 
 def run(script, *args, cwd):

@@ -23,7 +23,7 @@ from gridbias import checkpoint
 from gridbias.cvlog import FORMAT_VERSION, HEADER_SIZE, MAGIC, CVLog, CVLogWriter, read_cvlog
 from gridbias.errors import CVLogError, LockError, ParameterError
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 COLUMNS = ["step", "time", "phi", "bias"]
 UNITS = ["1", "ps", "rad", "kJ/mol"]
 META = {"system": "toy dimer in a box", "note": "Größe · 尺寸", "stride": 50}

@@ -160,7 +160,7 @@ def test_three_walkers_hold_identical_grids_equal_to_the_union_of_their_hills():
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the outside-grid warning is checked in a one-walker test below
-        biases, points, heights = zip(*results(run_walkers(n, walker)))
+        biases, points, heights = zip(*results(run_walkers(n, walker)), strict=True)
     state0 = biases[0].to_state()
     for b in biases[1:]:
         meta, arrays = b.to_state()

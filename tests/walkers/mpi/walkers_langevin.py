@@ -1,6 +1,6 @@
-"""MPI worker for tests/test_walkers_mpi.py: pure-core walkers on the Müller-Brown surface.
+"""MPI worker for tests/walkers/test_walkers_mpi.py: pure-core walkers on the Müller-Brown surface.
 
-Run as ``mpiexec -n 2 python tests/mpi/walkers_langevin.py SCENARIO OUT_DIR [options]``; every rank writes
+Run as ``mpiexec -n 2 python tests/walkers/mpi/walkers_langevin.py SCENARIO OUT_DIR [options]``; every rank writes
 its results under OUT_DIR and pytest checks them. Scenarios:
 
 exchange   walkers deposit for many exchanges on a grid they partly leave; each rank saves its full bias
@@ -29,7 +29,7 @@ from gridbias.walkers import SharedBias, WalkerSyncError, share
 
 T = 300.0
 KT = gb.KB * T
-# The Müller-Brown test of the core (tests/test_convergence.py): Müller & Brown, Theor. Chim. Acta 53, 75
+# The Müller-Brown test of the core (tests/core/test_metadynamics_limits.py): Müller & Brown, Theor. Chim. Acta 53, 75
 # (1979), scaled so the M_A -> S1 barrier is 12 kT; gamma = 6, sigma = 0.05 nm, w0 = 0.5 kT every 100 steps.
 SURFACE = MuellerBrown.for_barrier(12.0, T)
 M_A = np.array([-0.558, 1.442])
@@ -56,7 +56,7 @@ def rmse_kt(bias, exact_g, mask):
 
 def compared_region(grid):
     """Exact F on the nodes and the nodes with F - F_min < 8 kT at least 2 sigma from the grid edges
-    (the convention of tests/test_convergence.py)."""
+    (the convention of tests/core/test_metadynamics_limits.py)."""
     exact_g = SURFACE.free_energy(grid.nodes().reshape(-1, 2), temperature=T).reshape(grid.shape)
     mask = exact_g - exact_g.min() < 8.0 * KT
     for axis, nodes in enumerate(grid.axes):

@@ -189,7 +189,7 @@ def test_kill_while_saving_always_restorable(tmp_path):
     link, sim = dipeptide_link()
     rng = np.random.default_rng(5)
     steps_seen = set()
-    for attempt in range(12):
+    for _ in range(12):
         ready_r, ready_w = os.pipe()
         pid = os.fork()
         if pid == 0:  # child: save as fast as possible, say when the first save is on disk

@@ -13,7 +13,7 @@ from gridbias.cvlog import CVLogWriter
 from gridbias.runs import load_run, read_log, run_frames
 
 pytest.importorskip("matplotlib")
-README = Path(__file__).resolve().parent.parent / "README.md"
+README = Path(__file__).resolve().parents[2] / "README.md"
 
 
 def _analysis_blocks():

@@ -64,7 +64,7 @@ def make_cvs(spec):
 
 def random_bias(rng, cvs, lower, upper, bins, n_hills=40, walls=(), bias_factor=None):
     bias = gbo.make_bias(cvs, lower=lower, upper=upper, bins=bins,
-                         sigma=[0.12 * (u - lo) for lo, u in zip(lower, upper)], height=1.0,
+                         sigma=[0.12 * (u - lo) for lo, u in zip(lower, upper, strict=True)], height=1.0,
                          temperature=300.0, bias_factor=bias_factor, walls=walls)
     centers = bias.grid.lower + rng.random((n_hills, len(cvs))) * bias.grid.span
     bias.add_hills(centers, rng.uniform(0.2, 2.0, n_hills))
@@ -236,7 +236,7 @@ def test_pending_hills_are_exact_gaussians_then_fold(route, rng):
         else:
             hills = bias.history
             exact = bias.rebuilt(link._n_folded).evaluate(s)[0]
-            for c, hgt in zip(hills.centers[link._n_folded:], hills.heights[link._n_folded:]):
+            for c, hgt in zip(hills.centers[link._n_folded:], hills.heights[link._n_folded:], strict=True):
                 d = s - c
                 d[0] = (d[0] + PI) % (2 * PI) - PI
                 exact += hgt * math.exp(-np.sum(d**2 / (2 * bias.sigma**2)))

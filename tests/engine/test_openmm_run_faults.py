@@ -6,8 +6,8 @@ with checkpoints and a CV log) and checks the guarantees stated in the docstring
 every failure, nothing is deposited from non-finite coordinates, a damaged or foreign file is refused with
 a CheckpointError/CVLogError before anything is changed, and nothing in a file is ever executed. The
 reader-level cases (every truncation and byte flip of a checkpoint or log, hypothesis fuzzing, hard kills
-while writing) are in tests/test_checkpoint.py and tests/test_cvlog.py; here they are repeated only on
-files the adapter itself wrote. A shortened bench/soak_openmm.py (file sizes over a run) is at the top.
+while writing) are in tests/core/test_checkpoint_files.py and tests/core/test_cvlog_files.py; here they are
+repeated only on files the adapter itself wrote. A shortened bench/soak_openmm.py (file sizes over a run) is at the top.
 """
 
 import errno
@@ -47,7 +47,7 @@ from gridbias.checkpoint import read_checkpoint, write_checkpoint  # noqa: E402
 from gridbias.cvlog import read_cvlog  # noqa: E402
 
 pytestmark = pytest.mark.openmm
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 STRIDE = 20  # deposit (and log) every 20 steps
 BYTES_PER_2D_HILL = 8 * (2 + 2)  # centre (2 float64) + height + time: gridbias/history.py
 LOG_RECORD_BYTES = 8 * 5  # step, time, phi, psi, bias: 5 float64 per record (gridbias/cvlog.py layout)
@@ -140,7 +140,7 @@ def test_soak_checkpoint_grows_by_the_history_only_and_log_by_fixed_records(tmp_
         rows.append((meta["bias"]["n_hills"], ckpt.stat().st_size, meta_bytes, log.stat().st_size,
                      read_cvlog(log).n_records))
     rep.close()
-    hills, size, meta_bytes, log_size, records = (np.array(c) for c in zip(*rows))
+    hills, size, meta_bytes, log_size, records = (np.array(c) for c in zip(*rows, strict=True))
     np.testing.assert_array_equal(hills, np.arange(1, 13) * 500 // STRIDE)
     rest = size - BYTES_PER_2D_HILL * hills - meta_bytes
     assert np.all(rest == rest[0]), f"checkpoint bytes besides history and metadata changed: {rest}"

@@ -1,6 +1,6 @@
-"""MPI worker for tests/test_walkers_mpi.py: OpenMM walkers (the demo dipeptide, Reference platform).
+"""MPI worker for tests/walkers/test_walkers_mpi.py: OpenMM walkers (the demo dipeptide, Reference platform).
 
-Run as ``mpiexec -n 2 python tests/mpi/walkers_openmm.py SCENARIO OUT_DIR STEPS``. Each rank runs its own
+Run as ``mpiexec -n 2 python tests/walkers/mpi/walkers_openmm.py SCENARIO OUT_DIR STEPS``. Each rank runs its own
 Simulation (own starting conformation, velocities and integrator seed) with the same few adapter lines as
 one walker, plus ``walkers.share``. Scenarios:
 

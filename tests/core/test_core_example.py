@@ -3,7 +3,7 @@
 import importlib.util
 from pathlib import Path
 
-EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
+EXAMPLES = Path(__file__).resolve().parents[2] / "examples"
 
 
 def _load(name):

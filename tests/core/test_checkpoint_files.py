@@ -31,7 +31,7 @@ from gridbias.checkpoint import (
 )
 from gridbias.errors import CheckpointError, LockError, ParameterError
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 KIND = "gridbias.test"
 
 ALL_DTYPES = [

@@ -118,7 +118,7 @@ def test_frames_see_the_hills_deposited_strictly_before_them(rng):
     frame_times = np.array([0.0, 0.5, 1.0, 1.5, 3.0, 3.2, 6.0, 9.0])
     hills_seen = [0, 0, 0, 1, 2, 3, 5, 6]
     cvs = rng.uniform(-1.5, 1.8, size=(frame_times.size, 1))
-    logged = np.array([bias.rebuilt(k).evaluate(cv)[0] for k, cv in zip(hills_seen, cvs)])
+    logged = np.array([bias.rebuilt(k).evaluate(cv)[0] for k, cv in zip(hills_seen, cvs, strict=True)])
     weights = offset_weights(bias, frame_times, frame_bias=logged)
     expected_c = [time_independent_offset(bias.rebuilt(k).values, bias.grid, KT, 8.0) for k in hills_seen]
     np.testing.assert_allclose(weights.offsets, expected_c, rtol=1e-12, atol=1e-12)
@@ -161,7 +161,7 @@ def double_well(x):
 def exact_bin_free_energy(edges):
     """-kT ln of the bin-averaged Boltzmann factor of the double well (scipy.integrate.quad)."""
     out = np.array([integrate.quad(lambda x: np.exp(-double_well(x) / KT), a, b)[0] / (b - a)
-                    for a, b in zip(edges[:-1], edges[1:])])
+                    for a, b in zip(edges[:-1], edges[1:], strict=True)])
     return -KT * np.log(out)
 
 
@@ -224,7 +224,7 @@ def exact_bin_free_energy_along_y(potential, edges):
         return along * np.sqrt(np.pi / (2.0 * stiff)) * (special.erf(b * root) - special.erf(a * root))
 
     out = [integrate.quad(integrand, -2.5, 2.5, args=(a, b), limit=200)[0] / (b - a)
-           for a, b in zip(edges[:-1], edges[1:])]
+           for a, b in zip(edges[:-1], edges[1:], strict=True)]
     return -KT * np.log(out)
 
 

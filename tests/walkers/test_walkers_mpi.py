@@ -1,4 +1,4 @@
-"""Multiple walkers over real MPI: ``mpiexec -n 2`` runs of tests/mpi/walkers_langevin.py, checked here.
+"""Multiple walkers over real MPI: ``mpiexec -n 2`` runs of tests/walkers/mpi/walkers_langevin.py, checked here.
 
 References:
 - the shared bias is the sum of every walker's hills, V(s, t) = sum_a sum_k w_ak G(s - s_a(k tau)) (Raiteri,
@@ -6,7 +6,7 @@ References:
   equal the bias one process builds from the union of the hills in the same order;
 - well-tempered limit F = -(gamma/(gamma-1)) V + C (Barducci, Bussi & Parrinello, PRL 100, 020603, 2008),
   on the Müller-Brown surface (Müller & Brown, Theor. Chim. Acta 53, 75, 1979) with the settings and the
-  acceptance criterion of tests/test_convergence.py (RMSE <= 0.5 kT where F - F_min < 8 kT);
+  acceptance criterion of tests/core/test_metadynamics_limits.py (RMSE <= 0.5 kT where F - F_min < 8 kT);
 - "the error does not depend on the number of walkers" (Raiteri et al. 2006): N walkers reach the same
   accuracy with about 1/N of the steps per walker.
 """
@@ -249,7 +249,7 @@ def test_openmm_walkers_restart_exactly_on_the_reference_platform(tmp_path):
 @needs_openmm
 @pytest.mark.openmm
 def test_walkers_example_runs_and_continues(tmp_path):
-    example = HERE.parent / "examples" / "walkers_openmm.py"
+    example = HERE.parents[1] / "examples" / "walkers_openmm.py"
     options = ["--stride", 50, "--checkpoint-every", 500, "--folder", tmp_path / "out"]
     mpirun(["--steps", 1000, *options], script=example)
     _, output = mpirun(["--steps", 1500, *options], script=example)
