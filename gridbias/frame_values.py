@@ -98,8 +98,8 @@ def _read_npy(path, record_steps) -> tuple[str, str, np.ndarray, np.ndarray]:
         if array.shape[0] != record_steps.shape[0]:
             raise ParameterError(
                 f"values file {path!r} holds {array.shape[0]} values but the CV log has "
-                f"{record_steps.shape[0]} records: a .npy file of shape (n,) gives one value per record, in log order; for a subset "
-                "give (step, value) rows, shape (n, 2)")
+                f"{record_steps.shape[0]} records: a .npy file of shape (n,) gives one value per record, in log "
+                "order; for a subset give (step, value) rows, shape (n, 2)")
         return name, "", np.asarray(record_steps, dtype=float), array.astype(float)
     if array.ndim == 2 and array.shape[1] == 2:
         return name, "", array[:, 0].astype(float), array[:, 1].astype(float)
