@@ -29,6 +29,7 @@ import time
 import numpy as np
 
 from ..errors import ParameterError
+from ..openmm._units import in_md_units, is_quantity
 
 __all__ = [
     "DEFAULT_PHI",
@@ -127,11 +128,11 @@ def _require_openmm():
 
 def _angle_rad(name, value):
     """A finite angle in radians from a float (rad) or an ``openmm.unit`` quantity."""
-    if hasattr(value, "value_in_unit"):
-        _, _, unit = _require_openmm()
+    if is_quantity(value):
+        _require_openmm()
         try:
-            value = value.value_in_unit(unit.radian)
-        except TypeError as exc:
+            value = in_md_units(value, name=name, unit="radian")
+        except ParameterError as exc:
             raise ParameterError(f"{name} must be an angle, got {value!r}") from exc
     try:
         rad = float(value)
@@ -396,8 +397,8 @@ def minimize(system, positions, *, platform="Reference", tolerance=1.0, max_iter
     )
     state = context.getState(getPositions=True, getEnergy=True)
     return (
-        state.getPositions(asNumpy=True).value_in_unit(unit.nanometer),
-        state.getPotentialEnergy().value_in_unit(unit.kilojoule_per_mole),
+        np.asarray(in_md_units(state.getPositions(asNumpy=True))),
+        float(in_md_units(state.getPotentialEnergy())),
     )
 
 

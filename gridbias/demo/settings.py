@@ -26,10 +26,8 @@ The run parameters and why (the molecule is described in :mod:`gridbias.demo.dip
   in this demo's own F(phi); 30-40 kJ/mol from memory in REFERENCES) becomes about 2.5 kBT and is
   crossed hundreds of times, while regions far above the barriers are not filled for nothing.
 - Grid: 96 bins per period (3.75 deg), a third of the hill width or finer (common practice).
-- Length: 10 ns in each mode, 2 ns with ``quick``. Measured on this 2-core machine (Reference platform,
-  which is about 10x faster than the CPU platform for 22 atoms): 25,000-30,000 steps/s with the bias
-  work included when the machine is otherwise idle, so about 3 minutes (quick: 40 s); about 4.5 minutes
-  (quick: 1.5 minutes) while other jobs share the cores. The 10 ns run passes the convergence criteria
+- Length: 10 ns in each mode, 2 ns with ``quick`` (speed and run time: bench/README.md, "Figures quoted
+  in the code"). The 10 ns run passes the convergence criteria
   with margin (hill heights near 3% of the initial against the 5% threshold, basin differences drifting
   by about 0.25 kBT against 0.5); the quick run usually does not, and its report says so.
 

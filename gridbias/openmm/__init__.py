@@ -71,8 +71,8 @@ __all__ = [
 #: ``context.getState(getEnergy=True, groups={31})`` reads the bias energy alone.
 DEFAULT_FORCE_GROUP = 31
 
-#: Hills held as exact Gaussians between two table pushes. A push costs P (~5-12 ms for 129 x 129 on one CPU
-#: core) once per K + 1 deposits, but every pending-hill slot costs c (~0.5-1.2 us) at every step, so the
+#: Hills held as exact Gaussians between two table pushes. A push costs P once per K + 1 deposits, but every
+#: pending-hill slot costs c at every step (both measured in bench/README.md, "The deposit path"), so the
 #: cost per deposit is P / (K + 1) + K c stride; K = 4 is near the optimum sqrt(P / (c stride)) on the CPU
 #: and Reference platforms for strides of 250-1000 steps (bench/README.md). On GPUs, where c is tiny,
 #: a larger K pays.
@@ -165,7 +165,7 @@ def make_bias(cvs, *, lower, upper, bins, sigma, height, temperature, bias_facto
 
             power = float(spec.get("power", 2.0))
             per = getattr(unit, unit_name) ** power if unit_name != "dimensionless" else unit.dimensionless
-            spec["k"] = float(spec["k"].value_in_unit(unit.kilojoule_per_mole / per))
+            spec["k"] = in_md_units(spec["k"], name="wall k", unit=unit.kilojoule_per_mole / per)
         converted.append(Wall(**spec))
     return GridBias(grid, per_cv("sigma", sigma, cvs),
                     in_md_units(height, name="height", unit="kilojoule_per_mole"),
@@ -218,7 +218,7 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=
         CustomCentroidBondForce); no extra Context, so the cheapest per step on the CPU platform and the
         natural choice for GPUs. "cvforce": one CustomCVForce with the CVs as inner forces; on the
         Reference platform (the fastest for systems of a few dozen atoms) it is cheaper both per step and
-        per push (measured: 2-6x, bench/README.md), but its inner Context costs ~0.1 ms per step on the
+        per push (bench/README.md, "The deposit path"), but its inner Context costs time at every step on the
         CPU platform. Required for ``from_force`` CVs (chosen automatically then).
     name : str, keyword-only
         Prefix of the forces' names and of the global parameters (attach two biases with two names).

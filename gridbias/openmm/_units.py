@@ -26,10 +26,10 @@ def in_md_units(value, *, name: str | None = None, unit: str | None = None):
     value : quantity, number, array or sequence
     name : str, optional
         The parameter's name, for error messages.
-    unit : str, optional
-        Name of an ``openmm.unit`` unit (``"nanometer"``, ``"radian"``, ``"kilojoule_per_mole"``, ...). When
-        given, a quantity must be compatible with it and the result is one float (a bare number is taken
-        to be in this unit).
+    unit : str or openmm.unit.Unit, optional
+        A unit, or the name of one in ``openmm.unit`` (``"nanometer"``, ``"radian"``, ...), in OpenMM's
+        default units. When given, a quantity must be compatible with it and the result is one float (a
+        bare number is taken to be in this unit).
 
     Returns
     -------
@@ -44,7 +44,7 @@ def in_md_units(value, *, name: str | None = None, unit: str | None = None):
         if unit is not None:
             from openmm import unit as openmm_unit
 
-            target = getattr(openmm_unit, unit)
+            target = getattr(openmm_unit, unit) if isinstance(unit, str) else unit
             if not value.unit.is_compatible(target):
                 raise ParameterError(f"{name} must be in units compatible with {unit}, got {value}")
             return float(value.value_in_unit(target))

@@ -4,7 +4,8 @@ Users make CVs with the builders in ``gridbias.openmm``; the classes here are wh
 
 Each CV knows three things: how OpenMM computes it (an expression over the "points" of one bond of a
 custom force, or an inner force of a CustomCVForce), how to compute the same number from a positions
-array in NumPy (the reporter reads CVs this way: ~20-60 us instead of 0.2-0.5 ms through the engine),
+array in NumPy (the reporter reads CVs this way on every route; the compound route has no engine call
+that returns them; cost in bench/README.md, "Figures quoted in the code"),
 and a JSON-safe description that a checkpoint compares on restore. Nothing here imports OpenMM at module
 level.
 

@@ -6,9 +6,9 @@ Two forces carry a bias (both in the link's force group):
   nothing but the table call plus the CV definitions, because OpenMM recompiles a force's expression on
   every ``updateParametersInContext`` (DESIGN.md: every extra term costs time at every push);
 - the *hill force* applies the walls and up to ``pending`` recent hills as exact Gaussians whose
-  heights and centres are global parameters (``Context.setParameter``, ~1 us, no recompile). It is
-  never pushed, so its expression may be long. Every ``pending + 1`` deposits the pending hills are
-  folded into the table with one push.
+  heights and centres are global parameters (``Context.setParameter``: no recompile, about a microsecond,
+  bench/README.md). It is never pushed, so its expression may be long. Every ``pending + 1`` deposits the
+  pending hills are folded into the table with one push.
 
 On the CustomCVForce route both live in one CustomCVForce (its push refits the tables but recompiles
 cheaply), with the CVs as inner forces.

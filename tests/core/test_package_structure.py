@@ -83,6 +83,34 @@ def test_no_import_cycle():
     assert cycle is None, "import cycle: " + " -> ".join(cycle)
 
 
+# The rows of the layout picture in DEVELOPERS.md, bottom up: a module imports only from its row or below.
+LAYERS = {
+    "files": ["errors", "_files", "checkpoint", "cvlog"],
+    "core": ["gridbias", "grid", "walls", "history", "_kernels", "bias", "walkers", "testsystems", "_dynamics"],
+    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm"],
+    "application": ["demo"],
+    "entry point": ["cli", "__main__"],
+}
+
+
+def _layer(name):
+    parts = name.split(".")
+    top = parts[1] if len(parts) > 1 else "gridbias"
+    return next(k for k, (_, members) in enumerate(LAYERS.items()) if top in members)
+
+
+def test_every_module_has_a_row_in_the_layout_picture():
+    for name in MODULES:
+        _layer(name)  # raises StopIteration for a module DEVELOPERS.md does not place
+
+
+def test_imports_run_down_the_layout_picture():
+    rows = list(LAYERS)
+    upward = [f"{name} ({rows[_layer(name)]}) imports {target} ({rows[_layer(target)]})"
+              for name, targets in GRAPH.items() for target in targets if _layer(target) > _layer(name)]
+    assert upward == []
+
+
 def test_only_the_main_module_imports_the_command_line():
     importers = sorted(name for name, targets in GRAPH.items() if "gridbias.cli" in targets)
     assert importers == ["gridbias.__main__"]
@@ -98,12 +126,14 @@ def test_module_is_small_and_states_its_job(name):
 
 
 def test_one_atomic_writer_and_no_private_quantity_values():
-    """Renames that put a file in place happen in gridbias/_files.py only; nothing reads Quantity._value;
-    no code switches on class names."""
+    """Renames that put a file in place happen in gridbias/_files.py only; quantities are converted in
+    gridbias/openmm/_units.py only and nothing reads Quantity._value; no code switches on class names."""
     for path in MODULES.values():
         text = path.read_text()
         if path.name != "_files.py":
             assert not re.search(r"os\.(replace|rename|link)\(", text), f"{path} writes files its own way"
+        if path.name != "_units.py":
+            assert "value_in_unit" not in text, f"{path} converts quantities its own way"
         assert not re.search(r"\._value\b", text), f"{path} reads a quantity's private value"
         assert "__name__ ==" not in text, f"{path} switches on a class name"
 
