@@ -87,7 +87,7 @@ def test_no_import_cycle():
 LAYERS = {
     "files": ["errors", "_files", "checkpoint", "cvlog"],
     "core": ["gridbias", "grid", "walls", "history", "_kernels", "bias", "walkers", "testsystems", "_dynamics"],
-    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm"],
+    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm", "trajectories", "frame_values"],
     "application": ["demo"],
     "entry point": ["cli", "__main__"],
 }
