@@ -92,9 +92,8 @@ def _topology():
     return top
 
 
-def run_biased(folder, seed, *, n_steps=N_STEPS, observables=True, trajectory="dcd"):
-    """The biased run: x biased, y logged as an observable, a DCD (or XTC) file every DCD_EVERY steps.
-    Returns the link."""
+def _simulation(seed):
+    """One particle on U, x biased (well-tempered) on the Reference platform: (link, simulation)."""
     system = openmm.System()
     system.addParticle(10.0)
     force = openmm.CustomExternalForce(EXPRESSION)
@@ -110,6 +109,13 @@ def run_biased(folder, seed, *, n_steps=N_STEPS, observables=True, trajectory="d
     simulation = app.Simulation(_topology(), system, integrator, platform)
     simulation.context.setPositions([[-1.0, -0.5, 0.0]])
     simulation.context.setVelocitiesToTemperature(TEMPERATURE, seed)
+    return link, simulation
+
+
+def run_biased(folder, seed, *, n_steps=N_STEPS, observables=True, trajectory="dcd"):
+    """The biased run: x biased, y logged as an observable, a DCD (or XTC) file every DCD_EVERY steps.
+    Returns the link."""
+    link, simulation = _simulation(seed)
     extra = {"observables": [gbo.coordinate(0, "y", name="y")]} if observables else {}
     reporter = link.reporter(LOG_EVERY, log=str(folder / "run.gbl"), **extra)
     simulation.reporters.append(reporter)
@@ -352,3 +358,36 @@ def test_xtc_frames_line_up_too(tmp_path):
     frames = trajectories.load_frames(tmp_path / "run.xtc", log, top=_topology())
     assert frames.steps.tolist() == list(range(DCD_EVERY, 4_001, DCD_EVERY)) and frames.checked == ("x", "y")
     np.testing.assert_allclose(frames.trajectory.xyz[:, 0, 0], log.column("x")[frames.records], atol=1e-3)
+
+
+def test_frames_around_a_restart(tmp_path):
+    """A run stopped at step 3000 after its checkpoint of step 2000 and continued from it: the log is cut
+    back to 2000. OpenMM numbers a DCD's frames by count, so a DCD appended across the restart runs past the
+    log and is refused; a new DCD for the continuation lines up once its first step is given, and not before."""
+    log_path, checkpoint, dcd = tmp_path / "run.gbl", tmp_path / "run.gbz", tmp_path / "run.dcd"
+
+    def reporter(link):
+        return link.reporter(LOG_EVERY, log=str(log_path), checkpoint=str(checkpoint), checkpoint_every=2_000,
+                             observables=[gbo.coordinate(0, "y", name="y")])
+
+    link, simulation = _simulation(4)
+    first = reporter(link)
+    simulation.reporters += [first, app.DCDReporter(str(dcd), DCD_EVERY)]
+    simulation.step(3_000)
+    first.close()
+    link, simulation = _simulation(4)
+    second = reporter(link)
+    continuation = tmp_path / "continued.dcd"
+    simulation.reporters += [second, app.DCDReporter(str(dcd), DCD_EVERY, append=True),
+                             app.DCDReporter(str(continuation), DCD_EVERY)]
+    link.restore(simulation, str(checkpoint))
+    simulation.step(1_000)
+    second.close()
+    log = read_cvlog(log_path)
+    assert log.column("step")[-1] == 3_000 and log.n_records == 30
+    with pytest.raises(ParameterError, match=r"5 of 20 frames .* after the log's last record .*restart cut"):
+        trajectories.load_frames(dcd, log, top=_topology())
+    with pytest.raises(ParameterError, match=r"does not line up .*carry wrong steps .*give first_step="):
+        trajectories.load_frames(continuation, log, top=_topology())
+    frames = trajectories.load_frames(continuation, log, top=_topology(), first_step=2_000 + DCD_EVERY)
+    assert frames.steps.tolist() == [2_200, 2_400, 2_600, 2_800, 3_000] and frames.checked == ("x", "y")
