@@ -9,12 +9,14 @@ colour-blind readers.
 
 from __future__ import annotations
 
+import io
 import math
 import os
 
 import numpy as np
 
-from .errors import ParameterError
+from ._files import write_atomically
+from .errors import OutputError, ParameterError
 
 __all__ = ["new_figure", "save_figure", "plot_free_energy", "plot_basin_differences", "plot_cv_timeseries",
            "plot_hill_heights", "plot_blocking_curve"]
@@ -60,12 +62,14 @@ def _figure_and_axes(ax, width=6.4, height=4.4):
 
 
 def save_figure(figure, path, *, dpi: int = 150) -> str:
-    """Write a figure to ``path`` as PNG or SVG (chosen by the extension) and return the path.
+    """Write a figure to ``path`` as PNG or SVG (chosen by the extension), atomically; return the path.
 
     Raises
     ------
     ParameterError
         If the extension is not .png or .svg, or the folder does not exist.
+    OutputError
+        If the file could not be written (an older file there is intact).
     """
     path = os.fspath(path)
     extension = os.path.splitext(path)[1].lower()
@@ -74,7 +78,9 @@ def save_figure(figure, path, *, dpi: int = 150) -> str:
     folder = os.path.dirname(os.path.abspath(path))
     if not os.path.isdir(folder):
         raise ParameterError(f"cannot write {path!r}: folder {folder!r} does not exist")
-    figure.savefig(path, dpi=dpi)
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format=extension[1:], dpi=dpi)
+    write_atomically(path, buffer.getvalue(), what="figure", error=OutputError)
     return path
 
 

@@ -23,12 +23,14 @@ strong). Free energies from this demo illustrate the method; they are not a vali
 
 from __future__ import annotations
 
+import io
 import math
 import time
 
 import numpy as np
 
-from ..errors import ParameterError
+from .._files import write_atomically
+from ..errors import OutputError, ParameterError
 from ..openmm._units import in_md_units, is_quantity
 
 __all__ = [
@@ -519,5 +521,6 @@ def write_pdb(path, topology, positions):
     xyz_n3 = np.asarray(positions, dtype=float)
     if xyz_n3.shape != (topology.getNumAtoms(), 3):
         raise ParameterError(f"positions must have shape ({topology.getNumAtoms()}, 3), got {xyz_n3.shape}")
-    with open(path, "w") as handle:
-        app.PDBFile.writeFile(topology, xyz_n3 * unit.nanometer, handle)
+    text = io.StringIO()
+    app.PDBFile.writeFile(topology, xyz_n3 * unit.nanometer, text)
+    write_atomically(path, text.getvalue().encode("utf-8"), what="PDB file", error=OutputError)
