@@ -245,7 +245,7 @@ def test_observable_names_must_not_clash(tmp_path):
     system = openmm.System()
     system.addParticle(10.0)
     cvs = [gbo.coordinate(0, "x", name="x")]
-    bias = gbo.make_bias(cvs, lower=[-2.0], upper=[2.0], bins=[40], sigma=[0.1], height=1.0,
+    bias = gbo.make_bias(cvs, lower=[-2.0], upper=[2.0], bins=[120], sigma=[0.1], height=1.0,
                          temperature=TEMPERATURE)
     link = gbo.attach(system, cvs, bias, route="cvforce")
     log = str(tmp_path / "run.gbl")
