@@ -34,6 +34,7 @@ import numpy as np
 
 from ._advise_command import add_advise_command
 from .exports import FIGURE_FORMATS, TABLE_FORMATS, CVDisplay, profile_bytes, surface_bytes, write_files
+from .frame_values import read_frame_values
 from .progress import ProgressLine
 from .runs import load_run, log_column, read_log, run_frames
 
@@ -298,11 +299,12 @@ def _cmd_reweight(args) -> int:
     from . import analysis
 
     outputs = _check_outputs(args.outputs or [], TABLE_FORMATS + FIGURE_FORMATS, "--output",
-                             [args.checkpoint, args.log])
-    if len(args.along) > 2:
-        raise CommandError(f"--along takes one or two columns, got {len(args.along)}: "
-                           f"{', '.join(args.along)}")
-    d = len(args.along)
+                             [args.checkpoint, args.log] + ([args.values] if args.values else []))
+    along = list(args.along or [])
+    d = len(along) + (args.values is not None)
+    if not 1 <= d <= 2:
+        raise CommandError(f"--along, --values: give one or two columns in all (log columns, and the "
+                           f"quantity of a --values file), got {d}")
     bins = args.bins or ([60] if d == 1 else [36, 36])
     if len(bins) == 1:
         bins = bins * d
@@ -318,9 +320,17 @@ def _cmd_reweight(args) -> int:
     log = read_log(args.log)
     t, cvs, logged_bias, note = run_frames(run, log, args.columns, args.time_column)
     # run_frames keeps a prefix of the (time-ordered) frames: the ones within the checkpoint's time.
-    values = np.column_stack([log_column(log, c, "--along")[: t.size] for c in args.along])
-    units = [log.unit(c) for c in args.along]
-    show = CVDisplay(args.along, units, args.angle_unit)
+    columns = [log_column(log, c, "--along")[: t.size] for c in along]
+    units = [log.unit(c) for c in along]
+    names = list(along)
+    given = None
+    if args.values is not None:  # values of the frames at the file's steps, a subset of the records
+        given = read_frame_values(args.values, log.column("step")[: t.size])
+        columns = [c[given.records] for c in columns] + [given.values]
+        units.append(given.unit)
+        names.append(given.name)
+    values = np.column_stack(columns)
+    show = CVDisplay(names, units, args.angle_unit)
     bias = run.bias
     progress = ProgressLine()
     if args.method == "offset":
@@ -329,12 +339,15 @@ def _cmd_reweight(args) -> int:
                                           **kwargs)
     else:
         weights = analysis.final_bias_weights(bias, t, cvs, burn_in_fraction=args.burn_in)
+    if given is not None:
+        weights = analysis.weights_at_steps(weights, log.column("step")[: t.size], given.steps)
     used = weights.used
     dihedrals = _dihedral_columns(log, run)
     edges = [_edges(values[used, i], c, c in dihedrals, bins[i], ranges[i] if ranges else None, show.scale(i))
-             for i, c in enumerate(args.along)]
-    profile = analysis.free_energy_along(weights, values, edges, names=args.along)
-    print(f"free energy along {', '.join(args.along)} from {run.path} and {log.path}")
+             for i, c in enumerate(names)]
+    profile = analysis.free_energy_along(weights, values, edges, names=names)
+    source = f" and {args.values} ({values.shape[0]} frames)" if given is not None else ""
+    print(f"free energy along {', '.join(names)} from {run.path}, {log.path}{source}")
     print(f"  {weights.summary()}")
     if note:
         print(f"  note: {note}")
@@ -346,6 +359,13 @@ def _cmd_reweight(args) -> int:
     if sparse:
         print(f"  note: {sparse} bins hold fewer than {FEW_FRAMES} frames (marked *): their values and "
               "errors rest on a few visits and are not reliable")
+    for i, name in enumerate(names):
+        if name in dihedrals:
+            continue  # the arithmetic mean of a periodic angle means nothing
+        average = analysis.reweighted_average(weights, values[:, i])
+        bound = "" if average.plateau_found else " (no blocking plateau: the error is a lower bound)"
+        print(f"  unbiased average of {name}: {average.value * show.scale(i):.6g} +/- "
+              f"{average.error * show.scale(i):.2g}{show.suffix(i)}{bound}")
     if d == 1:
         print(f"  {show.label(0):>14}{'F (kJ/mol)':>13}{'error':>10}{'frames':>9}")
         for x, f, e, n in zip(profile.centers[0], profile.free_energy, profile.error, profile.counts,
@@ -539,8 +559,12 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=_UNITS_NOTE + " Free energies in kJ/mol, minimum 0; --range in the column's shown unit.")
     p.add_argument("checkpoint", metavar="CHECKPOINT", help="the run's checkpoint (.gbz)")
     p.add_argument("log", metavar="CVLOG", help="the run's CV log (.gbl)")
-    p.add_argument("--along", nargs="+", required=True, metavar="COLUMN",
-                   help="one or two log columns to compute the free energy along")
+    p.add_argument("--along", nargs="+", metavar="COLUMN",
+                   help="one or two log columns to compute the free energy along (biased CVs or observables)")
+    p.add_argument("--values", metavar="FILE",
+                   help="per-frame values of a quantity computed after the run: .npy (one value per log "
+                        "record, or (step, value) rows) or .csv with a 'step' column and one value column; "
+                        "every step must be a log record's. Alone, or with one --along column (2-D profile)")
     p.add_argument("--bins", type=_count_upto(MAX_BINS, "bins per column"), nargs="+", metavar="N",
                    help="bins per column (default 60 for one column, 36 x 36 for two)")
     p.add_argument("--range", type=_finite, nargs=2, action="append", metavar=("LOW", "HIGH"),

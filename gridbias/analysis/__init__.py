@@ -9,6 +9,8 @@ Modules, one job each:
 - ``surfaces``: the surface from the bias now or at past times (replaying the hills).
 - ``reweighting``: frame weights to the unbiased ensemble (time-independent offset, final bias), Kish ESS.
 - ``histograms``: free energy along any per-frame quantity, with block errors.
+- ``averages``: unbiased averages of any per-frame quantity and probabilities of regions, with block errors.
+- ``frames``: frames saved apart from the CV log (trajectories) lined up with its records by step.
 - ``blocking``: block analysis of a correlated series.
 - ``autocorrelation``: integrated autocorrelation time of a series, with its error.
 - ``basins``: basins from boxes or from the surface's minima; transitions between their cores.
@@ -20,6 +22,7 @@ Modules, one job each:
 
 from .autocorrelation import AutocorrelationTime, autocorrelation_time
 from .barriers import Crossing, Crossings, find_crossings
+from .averages import Average, RegionProbability, region_probability, reweighted_average
 from .basins import (
     Basins,
     Transitions,
@@ -39,6 +42,7 @@ from .convergence import (
     transition_criterion,
 )
 from .differences import BasinDifferences, basin_differences_from_bias, basin_differences_from_frames
+from .frames import record_index, weights_at_steps, weights_at_times
 from .histograms import Profile, free_energy_along
 from .reweighting import (
     FrameWeights,
@@ -63,6 +67,8 @@ __all__ = [
     "FrameWeights", "offset_weights", "final_bias_weights", "time_independent_offset",
     "kish_effective_sample_size",
     "Profile", "free_energy_along",
+    "Average", "RegionProbability", "reweighted_average", "region_probability",
+    "record_index", "weights_at_steps", "weights_at_times",
     "BlockingCurve", "blocking_curve", "AutocorrelationTime", "autocorrelation_time",
     "Basins", "Transitions", "basins_from_boxes", "find_basins", "basin_free_energies", "count_transitions",
     "BasinDifferences", "basin_differences_from_bias", "basin_differences_from_frames",

@@ -51,47 +51,6 @@ class _StopRequest:
             signal.signal(sig, handler)
 
 
-class _FrameLog:
-    """An OpenMM reporter that logs step, time, phi, psi and the bias the frame felt (reweight mode).
-
-    The adapter's own log holds the biased CVs only; here psi is not biased but is needed per frame, so
-    the demo writes a log of the same layout with psi added. It must come before the bias reporter in
-    ``simulation.reporters``, so that at a deposit step it logs the bias in effect before the deposit.
-    """
-
-    def __init__(self, path, link, quads, every):
-        from ..cvlog import CVLogWriter
-
-        self._link = link
-        self._quads = np.asarray(quads)
-        self._every = every
-        metadata = {"cvs": link.describe_cvs(), "grid": link.bias.grid.to_dict(),
-                    "temperature": link.bias.temperature, "bias_factor": link.bias.bias_factor,
-                    "stride": every,
-                    "observables": [{"name": "psi", "kind": "dihedral", "atoms": [int(a) for a in quads[1]]}]}
-        self._writer = CVLogWriter(path, ["step", "time", "phi", "psi", "bias"],
-                                   ["1", "ps", "rad", "rad", "kJ/mol"], metadata)
-
-    def describeNextReport(self, simulation):
-        steps = self._every - simulation.currentStep % self._every
-        return {"steps": steps, "periodic": False, "include": ["positions"]}
-
-    def report(self, simulation, state):
-        from ..openmm._units import in_md_units
-        from .dipeptide import dihedral_angles
-
-        phi, psi = dihedral_angles(in_md_units(state.getPositions(asNumpy=True)), self._quads)
-        energy, _ = self._link.bias.evaluate([phi])
-        self._writer.write([float(simulation.currentStep), float(in_md_units(state.getTime())), phi, psi,
-                            energy])
-
-    def restored(self, step):
-        self._writer.truncate_after(step)
-
-    def close(self):
-        self._writer.close()
-
-
 # ---------------------------------------------------------------------------------------------- the run
 def _choose_platform(requested, system, positions, stream, checkpoint_platform, probe, stride):
     from .dipeptide import fastest_platform
@@ -168,13 +127,10 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
     simulation = make_simulation(topology, system, positions, temperature=settings.temperature,
                                  platform=platform, seed=settings.seed)
     write_pdb(os.path.join(folder, START), topology, positions)  # after the checks that may refuse the run
-    frame_log = None
-    if settings.mode == "reweight":
-        frame_log = _FrameLog(frames, link, (phi_atoms, psi_atoms), settings.stride)
-        simulation.reporters.append(frame_log)
+    # Reweight mode: psi is not biased but logged beside phi at every record, for reweighting afterwards.
+    observables = [gbo.dihedral(*psi_atoms, name="psi")] if settings.mode == "reweight" else []
     reporter = link.reporter(settings.stride, checkpoint=checkpoint,
-                             checkpoint_every=settings.checkpoint_every,
-                             log=None if frame_log is not None else frames)
+                             checkpoint_every=settings.checkpoint_every, log=frames, observables=observables)
     simulation.reporters.append(reporter)
     try:
         if previous is not None:
@@ -183,16 +139,11 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
             except CheckpointError as exc:
                 raise CheckpointError(f"{exc}; the checkpoint was written with other demo settings: start "
                                       f"again with --fresh, or use another --out folder") from exc
-            if frame_log is not None:
-                frame_log.restored(restored.step)
             say(stream, f"continuing from {checkpoint} at {restored.time / 1000:g} ns "
                          f"({link.bias.n_hills:,} hills)")
-        return _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream, progress,
-                        platform)
+        return _advance(simulation, link, reporter, checkpoint, settings, stream, progress, platform)
     finally:
         reporter.close()
-        if frame_log is not None:
-            frame_log.close()
 
 
 #: Share of the demo's wall-clock time its convergence checks may take. A check replays the hills and
@@ -238,7 +189,7 @@ def _frames(path, labels, writer_owner):
     return load
 
 
-def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream, progress, platform):
+def _advance(simulation, link, reporter, checkpoint, settings, stream, progress, platform):
     """Step in chunks until a stop rule holds or a stop is requested; write the checkpoint at the end."""
     from ..openmm._units import in_md_units
     from ..stopping import Progress, Referee
@@ -249,7 +200,6 @@ def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream
     started = time.monotonic()
     referee = Referee(_rules(settings), link.bias)
     frames_path = os.path.join(os.path.dirname(checkpoint), FRAMES)
-    log = reporter if frame_log is None else frame_log
     decision = None
 
     def look(loader=None):
@@ -260,7 +210,7 @@ def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream
     with _StopRequest() as stop:
         while decision is None and not stop.asked:
             simulation.step(referee.stretch(look(), chunk))
-            decision = referee.decide(look(_frames(frames_path, link.labels(), log)))
+            decision = referee.decide(look(_frames(frames_path, link.labels(), reporter)))
             referee.restart_clock(simulation.currentStep)
             progress.update(_status_line(settings, simulation.currentStep, link.bias, started_step, started,
                                          mode_name))
@@ -271,8 +221,6 @@ def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream
         fsync_path(frames_path)
         link.save(simulation, checkpoint, stop=None if decision is None else decision.to_dict())
         reporter.close()
-        if frame_log is not None:
-            frame_log.close()
     progress.finish(line)
     elapsed = time.monotonic() - started
     done = simulation.currentStep - started_step

@@ -20,6 +20,7 @@ from ..errors import BlownUpError, CheckpointError, ParameterError, WriteError
 from ..runs import RunCheckpoint, read_run_checkpoint, write_run_checkpoint
 from ._units import in_md_units
 from .forces import require_openmm, same_object
+from .observables import Observables
 
 __all__ = ["BiasLink", "BiasReporter", "DEFAULT_MAX_WRITE_FAILURES", "MAX_COORDINATE", "MAX_SPEED"]
 
@@ -175,10 +176,10 @@ class BiasLink:
 
     # -- checkpoints ------------------------------------------------------------------------------
     def reporter(self, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
-                 max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
+                 observables=(), max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
         """A reporter that deposits every ``stride`` steps; see :class:`BiasReporter`."""
         rep = BiasReporter(self, stride, checkpoint=checkpoint, checkpoint_every=checkpoint_every, log=log,
-                           log_every=log_every, max_write_failures=max_write_failures)
+                           log_every=log_every, observables=observables, max_write_failures=max_write_failures)
         self._reporters.add(rep)
         return rep
 
@@ -366,8 +367,11 @@ class BiasReporter:
     Every ``stride`` steps it reads the CVs, deposits a hill and updates the engine; every
     ``checkpoint_every`` steps it writes the checkpoint (after that step's deposit); every ``log_every``
     steps (default ``stride``) it appends ``step, time, CVs, bias`` to the CV log, the bias being the one
-    in effect during that step (before its deposit). It holds a CheckpointLock on the checkpoint path
-    until ``close()`` (or until it is garbage-collected).
+    in effect during that step (before its deposit), followed by the ``observables``: any CVs of this
+    module (``distance``, ``dihedral``, ``from_force`` of any Force, ...), each with ``name=`` (its column),
+    logged and never biased. Geometric observables cost microseconds per record; ``from_force`` ones are
+    evaluated in a Context of their own at the records only. It holds a CheckpointLock on the checkpoint
+    path until ``close()`` (or until it is garbage-collected).
 
     NaN CV values stop the run with an error naming the step and the last checkpoint written.
 
@@ -392,7 +396,7 @@ class BiasReporter:
     """
 
     def __init__(self, link, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
-                 max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
+                 observables=(), max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
         self._link = link
         self.stride = _steps("stride", stride)
         if checkpoint is None and checkpoint_every is not None:
@@ -405,6 +409,9 @@ class BiasReporter:
             raise ParameterError("log_every needs log= (a file path)")
         self.log = None if log is None else os.fspath(log)
         self.log_every = None if log is None else _steps("log_every", self.stride if log_every is None else log_every)
+        self._observables = Observables(link.system, observables, link.labels())
+        if len(self._observables) and log is None:
+            raise ParameterError("observables are written to the CV log: give log= (a file path)")
         limit = max_write_failures
         if isinstance(limit, bool) or not isinstance(limit, (int, np.integer)) or limit < 1:
             raise ParameterError("max_write_failures must be an integer >= 1 (1: stop at the first "
@@ -433,7 +440,9 @@ class BiasReporter:
         steps = min(e - step % e for e in (self.stride, self.checkpoint_every, self.log_every) if e is not None)
         nxt = step + steps
         need_cvs = self._due(nxt, self.stride) or self._due(nxt, self.log_every)
-        include = ["positions"] if need_cvs and any(cv.geometric for cv in self._link.cvs) else []
+        need_positions = any(cv.geometric for cv in self._link.cvs) or (
+            self._observables.needs_positions and self._due(nxt, self.log_every))
+        include = ["positions"] if need_cvs and need_positions else []
         return {"steps": steps, "periodic": False, "include": include}
 
     def _start(self, simulation):
@@ -458,10 +467,12 @@ class BiasReporter:
             from ..cvlog import CVLogWriter
 
             labels = link.labels()
-            columns = ["step", "time"] + labels + ["bias"]
-            units = ["1", "ps"] + [cv.unit for cv in link.cvs] + ["kJ/mol"]
+            columns = ["step", "time"] + labels + ["bias"] + self._observables.names
+            units = ["1", "ps"] + [cv.unit for cv in link.cvs] + ["kJ/mol"] + self._observables.units
             meta = {"cvs": link.describe_cvs(), "grid": grid.to_dict(), "temperature": link.bias.temperature,
                     "bias_factor": link.bias.bias_factor, "stride": self.stride, "run_id": link.bias.run_id}
+            if len(self._observables):
+                meta["observables"] = self._observables.describe()
             self._writer = CVLogWriter(self.log, columns, units, meta)
             if self._restored_step is not None:
                 self._writer.truncate_after(self._restored_step)
@@ -498,7 +509,8 @@ class BiasReporter:
             t = float(in_md_units(state.getTime()))
             if log_due:
                 energy, _ = link.bias.evaluate(s)
-                self._unwritten_rows.append([float(step), t, *s.tolist(), energy])
+                extra = self._observable_values(simulation, state, step) if len(self._observables) else []
+                self._unwritten_rows.append([float(step), t, *s.tolist(), energy, *extra])
                 self._attempt(self.log, step, self._write_rows)
             if deposit_due:
                 link.deposit(simulation, s, time=t)
@@ -513,6 +525,12 @@ class BiasReporter:
     def _write_rows(self):
         self._writer.write(self._unwritten_rows)
         self._unwritten_rows.clear()
+
+    def _observable_values(self, simulation, state, step) -> list:
+        pos_n3 = np.asarray(in_md_units(state.getPositions(asNumpy=True)))
+        box = (np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)))
+               if self._link._periodic_box else None)
+        return self._observables.values(simulation.context, pos_n3, box, step)
 
     def _write_checkpoint(self, simulation, step):
         """Flush the CV log, then write the checkpoint, each under the write-failure policy."""

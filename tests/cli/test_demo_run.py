@@ -162,7 +162,8 @@ def test_tiny_reweight_demo_compares_with_the_2d_run(tiny):
     run = load_run(folder / "run.gbz")
     assert run.names == ("phi",) and run.bias.ndim == 1
     log = read_cvlog(folder / "frames.gbl")
-    assert log.columns == ("step", "time", "phi", "psi", "bias")
+    assert log.columns == ("step", "time", "phi", "bias", "psi")  # psi: an observable of the reporter
+    assert [spec["name"] for spec in log.metadata["observables"]] == ["psi"]
     # The logged bias is the one each frame felt: the bias replayed up to the hills deposited before it.
     t, phi = log.column("time"), log.column("phi")
     for k in (0, 3, 7):
