@@ -21,8 +21,8 @@ Modules, one job each:
 """
 
 from .autocorrelation import AutocorrelationTime, autocorrelation_time
-from .barriers import Crossing, Crossings, find_crossings
 from .averages import Average, RegionProbability, region_probability, reweighted_average
+from .barriers import Crossing, Crossings, find_crossings
 from .basins import (
     Basins,
     Transitions,

@@ -92,7 +92,7 @@ LAYERS = {
                  "stopping", "core_run",
                  "advice", "_short_run", "_series_files"],
     "application": ["demo"],
-    "entry point": ["cli", "_advise_command", "__main__"],
+    "entry point": ["cli", "_cli_options", "_advise_command", "__main__"],
 }
 
 
