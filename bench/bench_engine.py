@@ -122,7 +122,8 @@ def deposit_components(runs, rounds, block=200):
             if link is None:
                 best[k][0] = min(best[k][0], step)
                 continue
-            push = fastest(lambda: (link._engine.push_table(context, link.bias.values), integrator.step(1)), 1)
+            push = fastest(lambda: (link._engine.push_table(context, link.bias.values, link.bias._coef),
+                                    integrator.step(1)), 1)
             probe = link.bias.copy()
             python = fastest(lambda: probe.deposit(link.cv_values(sim)), 1)
             centre = [0.0] * link.bias.ndim
@@ -144,7 +145,7 @@ def section_deposit(platform_names, quick):
     for pname in platform_names:
         plat = platform(pname, 1 if pname == "CPU" else None)
         for route in ("compound", "cvforce"):
-            designs = [0, 2, 4, 8, 16] if not quick else [0, 4, 8]
+            designs = ([0, 2, 4, 8, 16] if not quick else [0, 4, 8]) if route == "compound" else [0]
             runs = {k: Run(top, pos, system, plat, cvs=cvs, bias=dipeptide_bias(cvs), route=route, pending_hills=k)
                     for k in designs}
             runs["none"] = Run(top, pos, system, plat, deposit=False)

@@ -51,7 +51,7 @@ import gridbias as gb  # noqa: E402
 from gridbias import openmm as gbo  # noqa: E402
 from gridbias.demo.dipeptide import build_dipeptide  # noqa: E402
 
-PENDING = gbo.DEFAULT_PENDING_HILLS  # the shipped fast path
+PENDING = 4  # the compound route's pending hills for a 129^2 table (gridbias.openmm.routes.pending_for)
 STRIDE = 500
 STRIDES = (50, 100, 500, 2000)
 SIZES = {1: (100, 1000, 10_000), 2: (64, 128, 256, 512), 3: (16, 32, 48, 64)}  # bins per axis
@@ -103,7 +103,7 @@ def section_push(quick, plat_name):
     rows, records = [], []
     for d, sizes in (QUICK_SIZES if quick else SIZES).items():
         cvs = [gbo.dihedral(*q) for q in quads[:d]]
-        for route in ("compound", "cvforce"):
+        for route in ("compound",):  # the cvforce route (no pending hills): bench_routes.py --section push
             measured = {}
             for bins in sizes:
                 runs = {k: Run(top, pos, system, plat, cvs=cvs, bias=periodic_bias(cvs, bins), deposit=False,
@@ -227,7 +227,8 @@ def section_water(quick):
         r = Run(top, pos, system, plat, cvs=cvs, bias=dipeptide_bias(cvs, bins), deposit=False)
         r.sim.step(2)
         link, context = r.link, r.sim.context
-        push = fastest(lambda link=link, context=context: link._engine.push_table(context, link.bias.values), 3)
+        push = fastest(lambda link=link, context=context: link._engine.push_table(context, link.bias.values,
+                                                                                   link.bias._coef), 3)
         probe = link.bias.copy()
         python = fastest(lambda link=link, probe=probe, sim=r.sim: probe.deposit(link.cv_values(sim)), 3)
         slot = fastest(lambda link=link, context=context: link._engine.set_slot(context, 0, [0.0, 0.0], 0.0), 5)

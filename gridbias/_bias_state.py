@@ -22,6 +22,7 @@ _FIELDS = {"kind", "version", "grid", "sigma", "height", "temperature", "bias_fa
            "n_hills", "n_outside", "run_id", "walkers"}
 _ARRAYS = {"coefficients", "hill_centers", "hill_heights", "hill_times"}
 _MAX_COUNT = 2**53  # integers in a state file beyond this cannot be counts of anything held in memory
+_MAX_PERIODS = 2**20  # periods from the grid within which a periodic hill centre keeps ~1e-10 precision
 
 
 def _is(value, kind) -> bool:
@@ -115,6 +116,14 @@ def checked_bias(cls, meta, arrays):
         raise CheckpointError("coefficients hold NaN or infinite values")
     if not np.isfinite(centers).all() or not grid.contains(centers).all():
         raise CheckpointError("hill centres must be finite and inside the grid")
+    # On a periodic axis any value wraps, but far out the wrapped position keeps no precision (a centre
+    # 1e56 away lands anywhere): centres must lie within _MAX_PERIODS periods of the grid.
+    periodic = np.asarray(grid.periodic, dtype=bool)
+    if periodic.any() and n:
+        offset = np.abs(centers[:, periodic] - np.asarray(grid.lower)[periodic])
+        if (offset > _MAX_PERIODS * np.asarray(grid.span)[periodic]).any():
+            raise CheckpointError(f"hill centres on periodic axes must lie within {_MAX_PERIODS} periods of "
+                                  "the grid (further out their wrapped position is lost to rounding)")
     if not (np.isfinite(heights).all() and (heights >= 0).all()):
         raise CheckpointError("hill heights must be finite and >= 0 kJ/mol")
     if np.isinf(times).any():

@@ -11,7 +11,7 @@ from numba import njit
 from ._kernels import eval_point, wall_point
 
 # Integer ids that select a potential inside the numba kernel.
-HARMONIC, DOUBLE_WELL, MUELLER_BROWN, COUPLED_DOUBLE_WELL = 0, 1, 2, 3
+HARMONIC, DOUBLE_WELL, MUELLER_BROWN, COUPLED_DOUBLE_WELL, SWITCHING_DOUBLE_WELL = 0, 1, 2, 3, 4
 
 
 @njit(cache=True, nogil=True)
@@ -42,6 +42,13 @@ def potential_point(kind, params, x, grad_out):
             grad_out[0] += term * (2.0 * a * dx + b * dy)
             grad_out[1] += term * (b * dx + 2.0 * c * dy)
         return energy
+    if kind == SWITCHING_DOUBLE_WELL:
+        h, h_y, tilt_y, coupling = params[0], params[1], params[2], params[3]
+        u = x[0] * x[0] - 1.0
+        w = x[1] * x[1] - 1.0
+        grad_out[0] = 4.0 * h * u * x[0] + coupling * x[1]
+        grad_out[1] = 4.0 * h_y * w * x[1] + tilt_y + coupling * x[0]
+        return h * u * u + h_y * w * w + tilt_y * x[1] + coupling * x[0] * x[1]
     # _COUPLED_DOUBLE_WELL
     h, tilt, ky, c = params[0], params[1], params[2], params[3]
     u = x[0] * x[0] - 1.0

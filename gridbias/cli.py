@@ -3,9 +3,11 @@
 Subcommands:
 
 - ``demo``: well-tempered metadynamics of a dipeptide in vacuum, with a report (gridbias.demo.run).
-- ``inspect``: summarise a checkpoint: grid, CVs, hills, simulated time, height decay, basins, verdict.
+- ``inspect``: summarise a checkpoint: grid, CVs, hills, simulated time, height decay, basins, saddle
+  points and barriers, verdict.
 - ``export``: write the free-energy surface of a checkpoint as CSV, NumPy .npz, PNG, SVG or PDF.
 - ``reweight``: the free energy along chosen columns of a CV log, reweighted to the unbiased ensemble.
+- ``advise``: metadynamics parameters from a short unbiased run (CV log, CSV or .npy), with reasons.
 
 Exit codes: 0 success; 1 the work itself failed or was interrupted (the simulation blew up, a disk filled,
 another run holds the checkpoint, Ctrl-C); 2 bad usage or bad input (unknown option, missing or
@@ -24,12 +26,34 @@ import argparse
 import math
 import os
 import sys
-import textwrap
 import traceback
 from dataclasses import replace
 
 import numpy as np
 
+from ._advise_command import add_advise_command
+from ._cli_options import (
+    _UNITS,
+    _UNITS_NOTE,
+    MAX_BINS,
+    MAX_BINS_TOTAL,
+    MAX_LENGTH_NS,
+    MAX_POINTS,
+    MAX_SEED,
+    _add_angle_unit,
+    _add_frames,
+    _burn_in,
+    _count,
+    _count_upto,
+    _finite,
+    _Formatter,
+    _fraction,
+    _names,
+    _option_type,
+    _Parser,
+    _positive,
+    _UsageError,
+)
 from .analysis.reweighting import DEFAULT_BURN_IN_FRACTION
 from .exports import (
     FIGURE_FORMATS,
@@ -40,6 +64,7 @@ from .exports import (
     surface_bytes,
     write_files,
 )
+from .frame_values import read_frame_values
 from .progress import ProgressLine
 from .runs import load_run, log_column, read_log, run_frames
 
@@ -62,25 +87,6 @@ class CommandError(Exception):
     def __init__(self, message: str, code: int = EXIT_BAD_INPUT):
         super().__init__(message)
         self.code = code
-
-
-class _UsageError(Exception):
-    pass
-
-
-class _Formatter(argparse.HelpFormatter):
-    """Help text with descriptions and epilogs wrapped paragraph by paragraph (lines kept apart)."""
-
-    def _fill_text(self, text, width, indent):
-        return "\n".join(textwrap.fill(paragraph, width, initial_indent=indent, subsequent_indent=indent)
-                         for paragraph in text.split("\n"))
-
-
-class _Parser(argparse.ArgumentParser):
-    """argparse that reports a usage error as one line instead of printing the usage and exiting."""
-
-    def error(self, message):
-        raise _UsageError(f"{message} (see '{self.prog} --help')")
 
 
 # -------------------------------------------------------------------------------------------- display
@@ -200,6 +206,7 @@ def _cmd_inspect(args) -> int:
     if basins.n_basins > 1:
         add("")
         add(differences.table())
+    weights = None
     if frames is not None and basins.n_basins > 1:
         t, cvs, logged_bias = frames
         kwargs = {"frame_bias": logged_bias} if logged_bias is not None else {"frame_cvs": cvs}
@@ -212,9 +219,16 @@ def _cmd_inspect(args) -> int:
     elif basins.n_basins > 1:
         add("  (no error bars from the bias alone: add --log with the run's CV log for reweighted "
             "differences with block-analysis errors)")
+    if basins.n_basins > 1:
+        with_frames = {} if weights is None else {"weights": weights, "frame_cvs": frames[1]}
+        crossings = analysis.find_crossings(grid, surface.free_energy, bias.kT, basins, names=run.names,
+                                            **with_frames)
+        add("")
+        add(crossings.table(format_point=lambda p: "(" + ", ".join(
+            f"{run.names[i]} {show.value(i, p[i])}{show.suffix(i)}" for i in range(bias.ndim)) + ")"))
     verdict = analysis.assess_convergence(
         bias, basins, frame_times=None if frames is None else frames[0],
-        frame_cvs=None if frames is None else frames[1], differences=differences,
+        frame_cvs=None if frames is None else frames[1], weights=weights, differences=differences,
         window_fraction=args.window, tolerance_kT=args.drift, min_transitions=args.transitions,
         max_height_fraction=args.max_height)
     add("")
@@ -300,11 +314,12 @@ def _cmd_reweight(args) -> int:
     from . import analysis
 
     outputs = _check_outputs(args.outputs or [], TABLE_FORMATS + FIGURE_FORMATS, "--output",
-                             [args.checkpoint, args.log])
-    if len(args.along) > 2:
-        raise CommandError(f"--along takes one or two columns, got {len(args.along)}: "
-                           f"{', '.join(args.along)}")
-    d = len(args.along)
+                             [args.checkpoint, args.log] + ([args.values] if args.values else []))
+    along = list(args.along or [])
+    d = len(along) + (args.values is not None)
+    if not 1 <= d <= 2:
+        raise CommandError(f"--along, --values: give one or two columns in all (log columns, and the "
+                           f"quantity of a --values file), got {d}")
     bins = args.bins or ([60] if d == 1 else [36, 36])
     if len(bins) == 1:
         bins = bins * d
@@ -323,9 +338,17 @@ def _cmd_reweight(args) -> int:
     log = read_log(args.log)
     t, cvs, logged_bias, note = run_frames(run, log, args.columns, args.time_column)
     # run_frames keeps a prefix of the (time-ordered) frames: the ones within the checkpoint's time.
-    values = np.column_stack([log_column(log, c, "--along")[: t.size] for c in args.along])
-    units = [log.unit(c) for c in args.along]
-    show = CVDisplay(args.along, units, args.angle_unit)
+    columns = [log_column(log, c, "--along")[: t.size] for c in along]
+    units = [log.unit(c) for c in along]
+    names = list(along)
+    given = None
+    if args.values is not None:  # values of the frames at the file's steps, a subset of the records
+        given = read_frame_values(args.values, log.column("step")[: t.size])
+        columns = [c[given.records] for c in columns] + [given.values]
+        units.append(given.unit)
+        names.append(given.name)
+    values = np.column_stack(columns)
+    show = CVDisplay(names, units, args.angle_unit)
     bias = run.bias
     progress = ProgressLine()
     if args.method == "offset":
@@ -335,12 +358,15 @@ def _cmd_reweight(args) -> int:
     else:
         burn_in = DEFAULT_BURN_IN_FRACTION if args.burn_in is None else args.burn_in
         weights = analysis.final_bias_weights(bias, t, cvs, burn_in_fraction=burn_in)
+    if given is not None:
+        weights = analysis.weights_at_steps(weights, log.column("step")[: t.size], given.steps)
     used = weights.used
     dihedrals = _dihedral_columns(log, run)
     edges = [_edges(values[used, i], c, c in dihedrals, bins[i], ranges[i] if ranges else None, show.scale(i))
-             for i, c in enumerate(args.along)]
-    profile = analysis.free_energy_along(weights, values, edges, names=args.along)
-    print(f"free energy along {', '.join(args.along)} from {run.path} and {log.path}")
+             for i, c in enumerate(names)]
+    profile = analysis.free_energy_along(weights, values, edges, names=names)
+    source = f" and {args.values} ({values.shape[0]} frames)" if given is not None else ""
+    print(f"free energy along {', '.join(names)} from {run.path}, {log.path}{source}")
     print(f"  {weights.summary()}")
     if note:
         print(f"  note: {note}")
@@ -352,6 +378,13 @@ def _cmd_reweight(args) -> int:
     if sparse:
         print(f"  note: {sparse} bins hold fewer than {FEW_FRAMES} frames (marked *): their values and "
               "errors rest on a few visits and are not reliable")
+    for i, name in enumerate(names):
+        if name in dihedrals:
+            continue  # the arithmetic mean of a periodic angle means nothing
+        average = analysis.reweighted_average(weights, values[:, i])
+        bound = "" if average.plateau_found else " (no blocking plateau: the error is a lower bound)"
+        print(f"  unbiased average of {name}: {average.value * show.scale(i):.6g} +/- "
+              f"{average.error * show.scale(i):.2g}{show.suffix(i)}{bound}")
     if d == 1:
         print(f"  {show.label(0):>14}{'F (kJ/mol)':>13}{'error':>10}{'frames':>9}")
         for x, f, e, n in zip(profile.centers[0], profile.free_energy, profile.error, profile.counts,
@@ -380,69 +413,14 @@ def _cmd_demo(args) -> int:
 
 
 # ------------------------------------------------------------------------------------------------ parser
-_UNITS = ("Units: energies in kJ/mol (and kBT where marked), times in ps, temperatures in K, CVs in their "
-          "own units (nm, rad)")
-_UNITS_NOTE = _UNITS + "; angles are shown and typed in degrees unless --angle-unit rad."
-
-
-def _option_type(convert, allowed, expected, malformed):
-    """An argparse type: ``convert(text)`` must succeed (else "expected <malformed>") and satisfy
-    ``allowed`` (else "expected <expected>"); both messages quote the text given."""
-    def parse(text):
-        try:
-            x = convert(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected {malformed}, got {text!r}") from None
-        if not allowed(x):
-            raise argparse.ArgumentTypeError(f"expected {expected}, got {text!r}")
-        return x
-    return parse
-
-
-_fraction = _option_type(float, lambda x: 0 < x <= 1, "a number in (0, 1]", "a number between 0 and 1")
-_positive = _option_type(float, lambda x: math.isfinite(x) and x > 0, "a positive number", "a positive number")
-_count = _option_type(int, lambda n: n >= 1, "a whole number >= 1", "a whole number")
-_finite = _option_type(float, math.isfinite, "a finite number", "a number")
-_burn_in = _option_type(float, lambda x: 0 <= x < 1, "a number in [0, 1)", "a number between 0 and 1")
-
-
-# Bounds of the options that size arrays or work, far above any useful value (a typo must not exhaust the
-# machine): bins per column and in all, moments replayed, demo ns (1 us: days anywhere), OpenMM's 32-bit seeds.
-MAX_BINS, MAX_BINS_TOTAL, MAX_POINTS, MAX_LENGTH_NS, MAX_SEED = 5_000, 4_000_000, 1_000, 1_000.0, 2**31 - 1
-
-
-def _count_upto(limit, why):
-    return _option_type(int, lambda n: 1 <= n <= limit, f"a whole number in 1..{limit:,} ({why})", "a whole number")
-
-
-def _names(text):
-    names = [n.strip() for n in text.split(",")]
-    if not all(names):
-        raise argparse.ArgumentTypeError(f"expected comma-separated column names, got {text!r}")
-    return names
-
-
-def _add_angle_unit(p):
-    p.add_argument("--angle-unit", "--angles", dest="angle_unit", choices=("deg", "rad"), default="deg",
-                   help="show (and read --range values of) angle CVs in degrees or radians (default deg; "
-                        "--angles is the older spelling)")
-
-
-def _add_frames(p):
-    p.add_argument("--columns", type=_names, metavar="NAME[,NAME...]",
-                   help="the log columns holding the biased CVs, in the bias's order (default: the CV names "
-                        "stored in the checkpoint)")
-    p.add_argument("--time-column", default="time", metavar="NAME",
-                   help="the log column holding the simulated time in ps (default 'time')")
-
-
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``gridbias`` command."""
     from . import __version__
 
     parser = _Parser(prog="gridbias", formatter_class=_Formatter,
                      description="Grid-stored metadynamics: run the demo, look at a run's checkpoint, export "
-                                 "its free-energy surface, reweight its CV log.",
+                                 "its free-energy surface, reweight its CV log, get parameters from a short "
+                                 "unbiased run.",
                      epilog="Exit codes: 0 success, 1 the work failed or was interrupted, 2 bad usage or bad "
                             "input.\n" + _UNITS_NOTE)
     parser.add_argument("--version", action="version", version=f"gridbias {__version__}")
@@ -508,9 +486,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-height", type=_fraction, default=0.05, metavar="FRACTION",
                    help="well-tempered: recent hills must be at most this fraction of the initial height "
                         "(default 0.05)")
-    p.add_argument("--points", type=_count_upto(MAX_POINTS, "each one is a replay of the hills"), default=40,
+    p.add_argument("--points", type=_count_upto(MAX_POINTS, "each one is a replay of the hills"), default=100,
                    metavar="N",
-                   help="moments of the run at which the basin differences are computed (default 40)")
+                   help="moments of the run at which the basin differences are computed (default 100)")
     p.set_defaults(handler=_cmd_inspect)
 
     p = sub.add_parser(
@@ -545,8 +523,12 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=_UNITS_NOTE + " Free energies in kJ/mol, minimum 0; --range in the column's shown unit.")
     p.add_argument("checkpoint", metavar="CHECKPOINT", help="the run's checkpoint (.gbz)")
     p.add_argument("log", metavar="CVLOG", help="the run's CV log (.gbl)")
-    p.add_argument("--along", nargs="+", required=True, metavar="COLUMN",
-                   help="one or two log columns to compute the free energy along")
+    p.add_argument("--along", nargs="+", metavar="COLUMN",
+                   help="one or two log columns to compute the free energy along (biased CVs or observables)")
+    p.add_argument("--values", metavar="FILE",
+                   help="per-frame values of a quantity computed after the run: .npy (one value per log "
+                        "record, or (step, value) rows) or .csv with a 'step' column and one value column; "
+                        "every step must be a log record's. Alone, or with one --along column (2-D profile)")
     p.add_argument("--bins", type=_count_upto(MAX_BINS, "bins per column"), nargs="+", metavar="N",
                    help="bins per column (default 60 for one column, 36 x 36 for two)")
     p.add_argument("--range", type=_finite, nargs=2, action="append", metavar=("LOW", "HIGH"),
@@ -562,6 +544,9 @@ def build_parser() -> argparse.ArgumentParser:
     _add_frames(p)
     _add_angle_unit(p)
     p.set_defaults(handler=_cmd_reweight)
+
+    add_advise_command(sub, formatter_class=_Formatter, positive=_positive, names=_names,
+                       add_angle_unit=_add_angle_unit, units=_UNITS)
     return parser
 
 

@@ -115,14 +115,15 @@ def _moment(surface) -> str:
     return f"t = {surface.time:g} ps, {hills}" if np.isfinite(surface.time) else hills
 
 
-def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) -> bytes:
+def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None, crossings=None) -> bytes:
     """A free-energy surface (analysis.Surface) as the bytes of a .csv, .npz or figure file.
 
     CSV: one row per grid node, the CV columns (angles in ``angle_unit``) then ``free_energy[kJ/mol]``.
     NPZ: ``free_energy`` (grid shape, kJ/mol), ``axis0..`` node coordinates in CV units, ``names``,
     ``units``, ``periodic``, ``lower``, ``upper``, ``kT``, ``bias_factor`` (NaN: standard), ``time_ps``,
     ``n_hills``. Figures (png, svg, pdf): filled contours (2 CVs) or a curve (1 CV) by gridbias.plots,
-    with ``basins`` marked if given, angles in ``angle_unit`` and a title naming the time and hill count.
+    with ``basins`` marked if given, ``crossings`` (saddle points, minimum free-energy paths), angles in
+    ``angle_unit`` and a title naming the time and hill count.
     """
     grid = surface.grid
     show = CVDisplay(names, units, angle_unit)
@@ -143,14 +144,14 @@ def surface_bytes(surface, fmt, *, names, units, angle_unit="rad", basins=None) 
         assert set(arrays) == {f"axis{i}" for i in range(grid.ndim)} | set(SURFACE_NPZ_KEYS)
         return _npz_bytes(arrays)
     return figure_bytes(surface_figure(surface, names=names, units=units, angle_unit=angle_unit,
-                                       basins=basins), fmt)
+                                       basins=basins, crossings=crossings), fmt)
 
 
-def surface_figure(surface, *, names, units, angle_unit="rad", basins=None):
+def surface_figure(surface, *, names, units, angle_unit="rad", basins=None, crossings=None):
     """The figure ``surface_bytes`` writes: every angle (periodic or not) in ``angle_unit``, as in the
     tables, and a title naming the moment shown (time and hill count)."""
     plots = require_plots()
-    figure = plots.plot_free_energy(surface, basins=basins, names=_plot_names(names, units),
+    figure = plots.plot_free_energy(surface, basins=basins, crossings=crossings, names=_plot_names(names, units),
                                     angular=[u == "rad" for u in units], angle_unit=angle_unit)
     figure.axes[0].set_title(f"free-energy surface at {_moment(surface)}", fontsize="medium")
     return figure

@@ -19,7 +19,7 @@ from ._files import write_atomically
 from .errors import OutputError, ParameterError
 
 __all__ = ["new_figure", "save_figure", "plot_free_energy", "plot_basin_differences", "plot_cv_timeseries",
-           "plot_hill_heights", "plot_blocking_curve"]
+           "plot_hill_heights", "plot_blocking_curve", "plot_crossing_profile"]
 
 COLOUR_MAP = "cividis"
 _INK = "#1d2b36"  # lines and text: a dark slate
@@ -223,8 +223,33 @@ def _mark_basins(ax, basins, scales, ndim, curve=None, shown=None):
                    colors="white", linewidths=0.9, linestyles="dotted")
 
 
-def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, angle_unit: str = "rad",
-                     energy_unit: str = "kJ/mol", max_free_energy: float | None = None, level_step=None,
+def _path_segments(grid, path):
+    """Split a node path where it jumps across a periodic boundary: list of (m, d) pieces."""
+    step = np.abs(np.diff(path, axis=0))
+    jump = np.zeros(step.shape[0], dtype=bool)
+    for axis in range(grid.ndim):
+        if grid.periodic[axis]:
+            jump |= step[:, axis] > 0.5 * grid.span[axis]
+    return np.split(path, np.flatnonzero(jump) + 1)
+
+
+def _mark_crossings(ax, crossings, grid, scales, ndim, curve=None):
+    for c in crossings:
+        if ndim == 1:
+            x = c.saddle[0]
+            y = float(np.interp(x, curve[0], curve[1]))
+            ax.plot(x * scales[0], y, marker="x", markersize=8, markeredgewidth=2, color=_ACCENT)
+            continue
+        for piece in _path_segments(grid, np.asarray(c.path)):
+            ax.plot(piece[:, 0] * scales[0], piece[:, 1] * scales[1], color="white", linewidth=2.6, alpha=0.9)
+            ax.plot(piece[:, 0] * scales[0], piece[:, 1] * scales[1], color=_ACCENT, linewidth=1.4)
+        ax.plot(c.saddle[0] * scales[0], c.saddle[1] * scales[1], marker="X", markersize=9,
+                markerfacecolor=_ACCENT, markeredgecolor="white", markeredgewidth=1.0, linestyle="none")
+
+
+def plot_free_energy(result, *, ax=None, basins=None, crossings=None, names=(), angular=None,
+                     angle_unit: str = "rad", energy_unit: str = "kJ/mol",
+                     max_free_energy: float | None = None, level_step=None,
                      min_frames: int = DEFAULT_MIN_FRAMES):
     """Plot a free-energy profile (1-D curve with error band) or surface (2-D filled contours).
 
@@ -236,6 +261,9 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
         Draw here; default a new Figure.
     basins : Basins, keyword-only, optional
         Marked by name at their minimum (or box centre); boxes outlined, catchment borders dotted (2-D).
+    crossings : Crossings, keyword-only, optional
+        From ``analysis.find_crossings`` on the same grid: saddle points marked with a cross, minimum
+        free-energy paths drawn (2-D).
     names : sequence of str, keyword-only
         Axis labels (default the Profile's names, else "CV 1", "CV 2"); give units for non-angular axes.
     angular : sequence of bool, keyword-only, optional
@@ -298,6 +326,8 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
             ax.legend(frameon=False, loc="upper center")
         if basins is not None:
             _mark_basins(ax, basins, scales, 1, (np.asarray(coords[0]), y))
+        if crossings is not None:
+            _mark_crossings(ax, crossings, None, scales, 1, (np.asarray(coords[0]), y))
         return figure
     x, y = (np.asarray(c) * s for c, s in zip(coords, scales, strict=True))
     data = fes * factor
@@ -331,6 +361,10 @@ def plot_free_energy(result, *, ax=None, basins=None, names=(), angular=None, an
     if basins is not None:
         same_grid = isinstance(result, Surface) and result.grid == basins.grid
         _mark_basins(ax, basins, scales, 2, shown=(data <= top) if same_grid else None)
+    if crossings is not None:
+        if not isinstance(result, Surface):
+            raise ParameterError("crossings can be drawn on a Surface only (they live on its grid)")
+        _mark_crossings(ax, crossings, result.grid, scales, 2)
     return figure
 
 
@@ -522,4 +556,56 @@ def plot_blocking_curve(curve, *, ax=None, unit: str = ""):
     ax.set_xlabel("block size (frames)")
     ax.set_ylabel(f"standard error{f' ({unit})' if unit else ''}")
     ax.legend(frameon=False, loc="lower right")
+    return figure
+
+
+def plot_crossing_profile(crossing, *, ax=None, kT: float | None = None, energy_unit: str = "kJ/mol"):
+    """Plot the free energy along the minimum free-energy path of one crossing, with error bars.
+
+    Parameters
+    ----------
+    crossing : Crossing
+        One element of ``analysis.find_crossings(...)``.
+    ax : matplotlib Axes, keyword-only, optional
+    kT : float, kJ/mol, keyword-only
+        Needed for the second energy axis (``Crossings.kT``).
+    energy_unit : {"kJ/mol", "kBT"}, keyword-only
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        The surface along the path (line), the reweighted frames with one standard error (points and
+        bars, where frames were given), the saddle point (dashed line) and the barrier from each side.
+    """
+    from .analysis import Crossing
+
+    if not isinstance(crossing, Crossing):
+        raise ParameterError(f"crossing must be a Crossing (analysis.find_crossings), got "
+                             f"{type(crossing).__name__}")
+    if kT is None or not (math.isfinite(kT) and kT > 0):
+        raise ParameterError(f"kT must be given as a number > 0 (kJ/mol; Crossings.kT), got {kT!r}")
+    factor, unit = _energy_scale(energy_unit, kT)
+    figure, ax = _figure_and_axes(ax, 6.4, 4.0)
+    x = np.asarray(crossing.path_progress)
+    ax.plot(x, crossing.path_free_energy * factor, color=_INK, linewidth=1.8, label="surface along the path")
+    if np.isfinite(crossing.path_errors).any():
+        ok = np.isfinite(crossing.path_reweighted)
+        ax.errorbar(x[ok], crossing.path_reweighted[ok] * factor, yerr=crossing.path_errors[ok] * factor,
+                    marker="o", markersize=3, linestyle="none", capsize=2, color=_SERIES[2], alpha=0.8,
+                    label="reweighted frames ± 1 standard error")
+    top = crossing.barriers[0]  # the saddle, relative to the minimum of a
+    at = x[int(np.argmax(np.all(np.isclose(crossing.path, crossing.saddle), axis=1)))]
+    ax.axvline(at, color=_ACCENT, linewidth=1.0, linestyle="--", label="saddle point")
+    a, b = crossing.basins
+    ax.annotate(a, (0.0, 0.0), xytext=(0, -14), textcoords="offset points", ha="center", color=_ACCENT,
+                fontweight="bold")
+    ax.annotate(b, (1.0, (top - crossing.barriers[1]) * factor), xytext=(0, -14), textcoords="offset points",
+                ha="center", color=_ACCENT, fontweight="bold")
+    ax.set_title(f"{a} - {b}: barrier {crossing.barriers[0] * factor:.3g} {unit} from {a}, "
+                 f"{crossing.barriers[1] * factor:.3g} from {b}", loc="left", fontsize="medium")
+    ax.set_xlabel(f"progress along the minimum free-energy path ({a} = 0, {b} = 1)")
+    ax.set_ylabel(f"free energy relative to {a} ({unit})")
+    ax.set_xlim(-0.04, 1.04)
+    _secondary_energy_axis(ax, kT, energy_unit, "y")
+    ax.legend(frameon=True, framealpha=0.85, edgecolor="none", loc="best", fontsize="small")
     return figure

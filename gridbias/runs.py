@@ -71,6 +71,9 @@ class RunCheckpoint:
         The OpenMM version and the local time of writing.
     version : int
         Layout version.
+    stop : dict or None
+        The stop decision recorded by ``BiasLink.run_until`` (``gridbias.stopping.StopDecision.to_dict``),
+        None while the run goes on.
     """
 
     path: str
@@ -91,6 +94,7 @@ class RunCheckpoint:
     openmm_version: str = ""
     written: str = ""
     version: int = CHECKPOINT_VERSION
+    stop: dict | None = None
 
 
 def write_run_checkpoint(path, checkpoint: RunCheckpoint) -> None:
@@ -107,6 +111,8 @@ def write_run_checkpoint(path, checkpoint: RunCheckpoint) -> None:
     meta = {"version": c.version, "bias": c.bias_state, "cvs": list(c.cvs), "labels": list(c.labels),
             "n_particles": int(c.n_particles), "platform": c.platform, "openmm_version": c.openmm_version,
             "step": int(c.step), "time_ps": float(c.time), "engine": dict(c.engine), "written": c.written}
+    if c.stop is not None:
+        meta["stop"] = dict(c.stop)
     arrays = {f"bias.{k}": np.ascontiguousarray(v) for k, v in c.bias_arrays.items()}
     arrays["engine.folded_values"] = np.ascontiguousarray(c.folded_values)
     arrays["md.checkpoint"] = np.frombuffer(c.md_checkpoint, dtype=np.uint8)
@@ -150,7 +156,8 @@ def _parse_run_checkpoint(path, meta, arrays) -> RunCheckpoint:
         bias_state=parts["bias_meta"], bias_arrays=parts["bias_arrays"], engine=dict(meta["engine"]),
         folded_values=parts["folded"], md_checkpoint=arrays["md.checkpoint"].tobytes(),
         positions=arrays["md.positions"], velocities=arrays["md.velocities"], box=arrays["md.box"],
-        openmm_version=meta["openmm_version"], written=meta["written"], version=meta["version"])
+        openmm_version=meta["openmm_version"], written=meta["written"], version=meta["version"],
+        stop=parts["stop"])
 
 
 def _fail(path, text):
@@ -229,10 +236,21 @@ def _check_run_checkpoint(path: str, meta: dict, arrays: dict) -> dict:
         if a.dtype != np.float64 or a.shape != shape or not np.isfinite(a).all():
             _fail(path, f"{name} must be finite float64 of shape {shape} (the metadata's {n_particles} "
                         f"particles), got {a.shape} {a.dtype}")
+    stop = meta.get("stop")
+    if stop is not None:
+        if not (isinstance(stop, dict) and {"rule", "reason", "step"} <= set(stop)):
+            _fail(path, "stop must be a recorded stop decision (rule, reason, step)")
+        _str(path, "stop rule", stop["rule"])
+        _str(path, "stop reason", stop["reason"], 2000)
+        _int(path, "stop step", stop["step"], 0, _MAX_STEP)
+        when = stop.get("time")
+        if when is not None and (isinstance(when, bool) or not isinstance(when, (int, float))
+                                 or not math.isfinite(when)):
+            _fail(path, f"stop time must be a finite number or null, got {str(when)[:60]!r}")
     bias_arrays = {k[len("bias."):]: v for k, v in arrays.items() if k.startswith("bias.")}
     return {"bias_meta": bias_meta, "bias_arrays": bias_arrays, "cvs": cvs, "labels": labels,
             "n_particles": n_particles, "step": step, "time_ps": float(time_ps), "platform": meta["platform"],
-            "folded": folded, "n_folded": n_folded}
+            "folded": folded, "n_folded": n_folded, "stop": stop}
 
 
 # -------------------------------------------------------------------------------------- any checkpoint

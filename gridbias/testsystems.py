@@ -24,15 +24,8 @@ from . import _dynamics
 from .bias import KB, GridBias
 from .errors import ParameterError
 
-__all__ = [
-    "HarmonicWell",
-    "DoubleWell",
-    "MuellerBrown",
-    "CoupledDoubleWell",
-    "Trajectory",
-    "run_langevin",
-    "run_metadynamics",
-]
+__all__ = ["HarmonicWell", "DoubleWell", "MuellerBrown", "CoupledDoubleWell", "SwitchingDoubleWell", "Trajectory",
+           "run_langevin", "run_metadynamics"]
 
 # Integer ids that select a potential inside the numba kernel.
 _HARMONIC, _DOUBLE_WELL, _MUELLER_BROWN, _COUPLED_DOUBLE_WELL = (
@@ -358,6 +351,46 @@ class CoupledDoubleWell(_Potential):
 
 
 @dataclass(frozen=True)
+class SwitchingDoubleWell(_Potential):
+    """A double well in x tilted by a slow, unbiased switch y; meant to be biased along x alone.
+
+    U(x, y) = h (x^2 - 1)^2 + h_y (y^2 - 1)^2 + tilt_y y + coupling x y: ``barrier`` h and ``switch_barrier``
+    h_y (high: y flips rarely) in kJ/mol, ``switch_tilt`` (kJ/mol/nm; y = -1 stable, +1 metastable),
+    ``coupling`` (kJ/mol/nm^2; y = +1 favours x = -1). A run that flips y once samples two profiles along x
+    in turn, like CVs that miss a slow degree of freedom; the exact F(x) integrates y out.
+    """
+
+    barrier: float = 20.0
+    switch_barrier: float = 27.0
+    switch_tilt: float = 5.0
+    coupling: float = 4.0
+    ndim, cv_axes, domain = 2, (0,), ((-2.5, 2.5), (-2.5, 2.5))
+
+    def __post_init__(self):
+        for name in ("barrier", "switch_barrier"):
+            object.__setattr__(self, name, _positive(name, getattr(self, name)))
+        for name in ("switch_tilt", "coupling"):
+            object.__setattr__(self, name, _finite(name, getattr(self, name)))
+
+    def energy_gradient(self, points):
+        """Energy and gradient at ``points`` (n, 2) nm -> (n,) kJ/mol, (n, 2) kJ/mol/nm."""
+        x_n, y_n = _points(points, 2).T
+        u_n, w_n = x_n**2 - 1.0, y_n**2 - 1.0
+        energy_n = (self.barrier * u_n**2 + self.switch_barrier * w_n**2 + self.switch_tilt * y_n
+                    + self.coupling * x_n * y_n)
+        return energy_n, np.column_stack([4.0 * self.barrier * u_n * x_n + self.coupling * y_n, 4.0
+                                          * self.switch_barrier * w_n * y_n + self.switch_tilt + self.coupling * x_n])
+
+    def free_energy(self, points, *, temperature):
+        """Exact F(x) (y integrated out by quadrature) at ``points`` (n, 1) nm -> (n,) kJ/mol."""
+        return self.marginal_free_energy(0, _points(points, 1)[:, 0], temperature)
+
+    def _kernel_spec(self):
+        return _dynamics.SWITCHING_DOUBLE_WELL, np.array([self.barrier, self.switch_barrier, self.switch_tilt,
+                                                          self.coupling])
+
+
+@dataclass(frozen=True)
 class Trajectory:
     """Frames recorded by :func:`run_langevin` or :func:`run_metadynamics`.
 
@@ -442,9 +475,9 @@ class _Integrator:
 
     def advance(self, n_steps, grid_args, wall_args, cv_index, use_bias):
         noise = self.noise_scale * self.rng.standard_normal((n_steps, self.x.shape[0]))
-        _dynamics.baoab(self.kind, self.params, use_bias, *grid_args, *wall_args, cv_index, self.x, self.v, noise,
-               self.step, self.record_every, self.dt, self.friction, self.mass,
-               self.positions, self.velocities, self.potential_energies, self.bias_energies)
+        _dynamics.baoab(self.kind, self.params, use_bias, *grid_args, *wall_args, cv_index, self.x, self.v,
+                        noise, self.step, self.record_every, self.dt, self.friction, self.mass,
+                        self.positions, self.velocities, self.potential_energies, self.bias_energies)
         self.step += n_steps
 
     def trajectory(self):
@@ -472,7 +505,7 @@ def run_langevin(potential, x0, *, n_steps, dt, friction, temperature, rng, mass
 
     Parameters
     ----------
-    potential : HarmonicWell, DoubleWell, MuellerBrown or CoupledDoubleWell
+    potential : any potential of this module (HarmonicWell, DoubleWell, ...)
     x0 : (dim,) float, nm
         Start position.
     n_steps : int
@@ -530,7 +563,7 @@ def run_metadynamics(potential, bias, x0, *, n_deposits, stride, dt, friction, r
 
     Parameters
     ----------
-    potential : HarmonicWell, DoubleWell, MuellerBrown or CoupledDoubleWell
+    potential : any potential of this module (HarmonicWell, DoubleWell, ...)
     bias : gridbias.GridBias
         Its grid (and walls) act on the coordinates selected by ``cv``.
     x0 : (dim,) float, nm

@@ -442,11 +442,13 @@ def make_simulation(topology, system, positions, *, temperature=300.0, platform=
 
 
 def fastest_platform(system, positions, candidates=("Reference", "CPU"), *, seconds=0.5, temperature=300.0,
-                     timestep=TIMESTEP):
+                     timestep=TIMESTEP, attach=None, stride=500):
     """Time Langevin steps on each available platform and return the fastest.
 
     For a system this small, per-step overheads dominate, so the ranking depends on the machine and on
-    the forces in the system: pass the system as it will be run (bias force included).
+    the forces in the system: time it as it will run. With ``attach``, each platform is timed on a copy
+    of ``system`` carrying the bias that platform would run (the adapter picks its route per platform),
+    depositing every ``stride`` steps.
 
     Parameters
     ----------
@@ -461,6 +463,11 @@ def fastest_platform(system, positions, candidates=("Reference", "CPU"), *, seco
         K.
     timestep : float, optional
         ps.
+    attach : callable, optional
+        ``attach(system_copy, platform_name) -> gridbias.openmm.BiasLink``: adds the bias to a copy of
+        the system for one platform (give it a copy of the bias: the probe deposits hills).
+    stride : int, optional
+        Steps between the probe's deposits when ``attach`` is given.
 
     Returns
     -------
@@ -483,24 +490,39 @@ def fastest_platform(system, positions, candidates=("Reference", "CPU"), *, seco
             raise ParameterError(f"candidates: unknown platform {name!r}; allowed: {_PLATFORM_NAMES}")
     if not (isinstance(seconds, (int, float)) and 0.05 <= seconds <= 60):
         raise ParameterError(f"seconds must be between 0.05 and 60, got {seconds!r}")
+    if attach is not None and not callable(attach):
+        raise ParameterError(f"attach must be a callable (system, platform_name) -> BiasLink, got {attach!r}")
+    if isinstance(stride, bool) or not isinstance(stride, int) or stride < 1:
+        raise ParameterError(f"stride must be an integer number of steps >= 1, got {stride!r}")
     available = {openmm.Platform.getPlatform(i).getName() for i in range(openmm.Platform.getNumPlatforms())}
     rates = {}
     for name in candidates:
         if name not in available or name in rates:
             continue
         integrator = _integrator(temperature, timestep, FRICTION, seed=1)
-        context = openmm.Context(system, integrator, openmm.Platform.getPlatformByName(name))
+        timed_system, link = system, None
+        if attach is not None:
+            timed_system = openmm.XmlSerializer.deserialize(openmm.XmlSerializer.serialize(system))
+            link = attach(timed_system, name)
+        context = openmm.Context(timed_system, integrator, openmm.Platform.getPlatformByName(name))
         context.setPositions(xyz_n3 * unit.nanometer)
         context.setVelocitiesToTemperature(temperature * unit.kelvin, 1)
         integrator.step(10)  # warm-up: kernels compiled, caches filled
+        if link is not None:
+            link.deposit(context)  # the first deposit binds the link (one table push)
         steps, chunk = 0, 10
         start = time.perf_counter()
         while (elapsed := time.perf_counter() - start) < seconds:
-            integrator.step(chunk)
-            steps += chunk
-            chunk = min(2 * chunk, 1000)
+            if link is None:
+                integrator.step(chunk)
+                steps += chunk
+                chunk = min(2 * chunk, 1000)
+            else:
+                integrator.step(stride)
+                link.deposit(context)
+                steps += stride
         rates[name] = steps / elapsed
-        del context, integrator
+        del context, integrator, link
     if not rates:
         raise ParameterError(
             f"candidates: none of {tuple(candidates)} is available; available: {sorted(available)}"

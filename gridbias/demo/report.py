@@ -14,6 +14,7 @@ from dataclasses import replace
 import numpy as np
 
 from .settings import (
+    BARRIERS,
     CHECKPOINT,
     CONFORMERS,
     CONVERGENCE,
@@ -156,7 +157,7 @@ def _convergence_figure(plots, differences, bias, t, cvs, names, window_fraction
 def analyse(folder, settings, info, progress):
     """Surface, basins, differences with errors, verdict, figures and the report; returns (text, files)."""
     from .. import analysis
-    from ..analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION, DEFAULT_WINDOW_FRACTION
+    from ..analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION, DEFAULT_N_POINTS, DEFAULT_WINDOW_FRACTION
     from ..exports import profile_bytes, require_plots, shown_profile, surface_bytes, write_file
     from ..runs import load_run, read_log, run_frames
     from .dipeptide import TIMESTEP
@@ -177,11 +178,14 @@ def analyse(folder, settings, info, progress):
     reference = 0 if reference is None else reference
     weights = analysis.offset_weights(bias, t, frame_bias=logged_bias,
                                       progress=progress.counter("reweighting the frames"))
-    from_bias = analysis.basin_differences_from_bias(bias, basins, n_points=40, reference=reference,
+    from_bias = analysis.basin_differences_from_bias(bias, basins, n_points=DEFAULT_N_POINTS, reference=reference,
                                                      progress=progress.counter("replaying the hills"))
     from_frames = analysis.basin_differences_from_frames(weights, t, cvs, basins, n_points=20,
                                                          reference=reference)
-    verdict = analysis.assess_convergence(bias, basins, frame_times=t, frame_cvs=cvs, differences=from_bias)
+    verdict = analysis.assess_convergence(bias, basins, frame_times=t, frame_cvs=cvs, weights=weights,
+                                          differences=from_bias)
+    crossings = analysis.find_crossings(bias.grid, surface.free_energy, kT, basins, weights=weights,
+                                        frame_cvs=cvs, names=run.names)
     plots = require_plots()
     files = []
 
@@ -192,7 +196,9 @@ def analyse(folder, settings, info, progress):
 
     for name in SURFACE:
         put(name, surface_bytes(surface, name.rsplit(".", 1)[1], names=run.names, units=run.units,
-                                angle_unit="deg", basins=basins))
+                                angle_unit="deg", basins=basins, crossings=crossings))
+    if len(crossings):
+        put(BARRIERS, _figure_png(_barriers_figure(plots, crossings)))
     put(CONVERGENCE, _figure_png(_convergence_figure(plots, [from_bias, from_frames], bias, t, cvs, run.names,
                                                      DEFAULT_WINDOW_FRACTION, DEFAULT_MAX_HEIGHT_FRACTION)))
     psi_lines = []
@@ -234,9 +240,17 @@ def analyse(folder, settings, info, progress):
         psi_lines.insert(0, f"F(psi) by reweighting the {t.size:,} logged frames ({weights.summary()}); "
                             f"{spread}, {finite.sum()} of {finite.size} bins reached")
     text = _report_text(settings, run, info, basins, conformers, surface, from_bias, from_frames, verdict,
-                        psi_lines, files, t.size, TIMESTEP, time.monotonic() - started)
+                        psi_lines, files, t.size, TIMESTEP, time.monotonic() - started, crossings)
     put(REPORT, (text + "\n").encode("utf-8"))
     return text, tuple(files)
+
+
+def _barriers_figure(plots, crossings):
+    """The free energy along each minimum free-energy path, one panel per crossing."""
+    figure, axes = plots.new_figure(len(crossings), 1, width=6.4, height=3.4 * len(crossings))
+    for ax, crossing in zip(np.atleast_1d(axes), crossings, strict=True):
+        plots.plot_crossing_profile(crossing, ax=ax, kT=crossings.kT)
+    return figure
 
 
 def _figure_png(figure) -> bytes:
@@ -246,7 +260,7 @@ def _figure_png(figure) -> bytes:
 
 
 def _report_text(settings, run, info, basins, conformers, surface, from_bias, from_frames, verdict, psi_lines,
-                 files, n_frames, timestep, analysis_seconds) -> str:
+                 files, n_frames, timestep, analysis_seconds, crossings) -> str:
     from ..progress import format_duration
 
     bias = run.bias
@@ -270,6 +284,8 @@ def _report_text(settings, run, info, basins, conformers, surface, from_bias, fr
     recent = heights[-10:].mean()
     lines.append(f"hills        {bias.n_hills:,}; the last 10 average {recent:.3g} kJ/mol "
                  f"({100 * recent / bias.height:.2g}% of the initial); {n_frames:,} frames logged")
+    if info.get("decision"):
+        lines.append(f"stop         {info['decision']}")
     lines.append("")
     lines.append("basins: catchment regions of the minima of the final surface (each node belongs to the "
                  "minimum it flows down to); F_basin = -kBT ln of the Boltzmann sum over its nodes")
@@ -301,6 +317,10 @@ def _report_text(settings, run, info, basins, conformers, surface, from_bias, fr
                      "surface (too little sampling)")
     lines.append("errors: one standard error from block analysis of the reweighted frames (Flyvbjerg & "
                  "Petersen 1989); weights with the time-independent offset c(t) (Tiwary & Parrinello 2015)")
+    lines.append("")
+    lines.append(crossings.table(format_point=lambda p: "(" + ", ".join(
+        f"{name} {math.degrees(x):.1f} deg" for name, x in zip(run.names, p, strict=True)) + ")"))
+    lines.append("  (the minimum free-energy paths are drawn on surface.png and as profiles in barriers.png)")
     if psi_lines:
         lines.append("")
         lines.extend(psi_lines)

@@ -60,6 +60,12 @@ def _remove_own_files(folder):
 
 
 
+def _length(settings) -> str:
+    if settings.until_converged:
+        return f"until the convergence verdict holds (at most {settings.length_ns:g} ns)"
+    return f"{settings.length_ns:g} ns"
+
+
 def run_demo(out="gridbias-demo", settings: DemoSettings | None = None, *, fresh=False, stream=None,
              progress=None) -> DemoResult:
     """Run (or continue) the demo and write its results.
@@ -113,7 +119,7 @@ def run_demo(out="gridbias-demo", settings: DemoSettings | None = None, *, fresh
                 _remove_own_files(folder)
             biased = " and ".join(settings.biased)
             say(stream, f"gridbias demo ({settings.mode}): well-tempered metadynamics of the alanine dipeptide "
-                         f"in vacuum, biased on {biased}, {settings.length_ns:g} ns; results in {folder}")
+                         f"in vacuum, biased on {biased}, {_length(settings)}; results in {folder}")
             completed, step, info = simulate(folder, settings, stream, progress)
             if not completed:
                 return DemoResult(folder, False, step, "", ())

@@ -26,10 +26,13 @@ The run parameters and why (the molecule is described in :mod:`gridbias.demo.dip
   in this demo's own F(phi); 30-40 kJ/mol from memory in REFERENCES) becomes about 2.5 kBT and is
   crossed hundreds of times, while regions far above the barriers are not filled for nothing.
 - Grid: 96 bins per period (3.75 deg), a third of the hill width or finer (common practice).
-- Length: 10 ns in each mode, 2 ns with ``quick`` (speed and run time: bench/README.md, "Figures quoted
-  in the code"). The 10 ns run passes the convergence criteria
-  with margin (hill heights near 3% of the initial against the 5% threshold, basin differences drifting
-  by about 0.25 kBT against 0.5); the quick run usually does not, and its report says so.
+- Length: without a length, the run stops when the convergence verdict holds (checked at a cadence that
+  costs under 10% of this tiny molecule's fast run, see ``simulation.DEMO_CHECK_FRACTION``), at most after
+  20 ns; with ``length_ns`` it runs exactly that long, 2 ns with
+  ``quick`` (speed and run time: bench/README.md, "Figures quoted in the code"). A 10 ns run passes the
+  convergence criteria with margin (hill heights near 3% of the initial against the 5% threshold, basin
+  differences drifting by about 0.25 kBT against 0.5); the quick run usually does not, and its report
+  says so.
 
 Cautions (repeated in every report): the surface depends on the CV choice (here phi and psi, known to
 describe this molecule's slow motions in vacuum well; a poor CV causes hysteresis and overfilling), on
@@ -45,12 +48,15 @@ from dataclasses import dataclass
 
 from ..errors import ParameterError
 
-__all__ = ["DemoSettings", "CONFORMERS", "SUBFOLDERS", "FULL_LENGTH_NS", "QUICK_LENGTH_NS", "CHECKPOINT",
-           "FRAMES", "START", "REPORT", "SURFACE", "CONVERGENCE", "PSI_PROFILE", "PSI_COMPARISON", "OWN_FILES"]
+__all__ = ["DemoSettings", "CONFORMERS", "SUBFOLDERS", "FULL_LENGTH_NS", "QUICK_LENGTH_NS", "MAX_LENGTH_NS",
+           "CHECKPOINT", "FRAMES", "START", "REPORT", "SURFACE", "CONVERGENCE", "BARRIERS", "PSI_PROFILE",
+           "PSI_COMPARISON", "OWN_FILES"]
 
 #: Simulated time of a full run and of a quick one, ns (see the module docstring for the timing).
 FULL_LENGTH_NS = 10.0
 QUICK_LENGTH_NS = 2.0
+#: Longest run when no length is given and the run stops once converged, ns.
+MAX_LENGTH_NS = 20.0
 
 #: Subfolder of the results folder each mode works in.
 SUBFOLDERS = {"2d": "phi-psi", "reweight": "phi-only"}
@@ -67,9 +73,11 @@ START = "start.pdb"
 REPORT = "report.txt"
 SURFACE = ("surface.npz", "surface.csv", "surface.png")
 CONVERGENCE = "convergence.png"
+BARRIERS = "barriers.png"
 PSI_PROFILE = ("psi-reweighted.npz", "psi-reweighted.csv")
 PSI_COMPARISON = "psi-comparison.png"
-OWN_FILES = (CHECKPOINT, FRAMES, START, REPORT, *SURFACE, CONVERGENCE, *PSI_PROFILE, PSI_COMPARISON)
+OWN_FILES = (CHECKPOINT, FRAMES, START, REPORT, *SURFACE, CONVERGENCE, BARRIERS, *PSI_PROFILE,
+             PSI_COMPARISON)
 
 
 @dataclass(frozen=True)
@@ -80,7 +88,9 @@ class DemoSettings:
     ----------
     mode : {"2d", "reweight"}
     length_ns : float
-        Simulated time to reach, ns.
+        Simulated time to reach, ns (the longest run when ``until_converged``).
+    until_converged : bool
+        Stop as soon as the convergence verdict holds (``gridbias.stopping.Converged``).
     platform : str
         "auto" (time the available platforms, take the fastest) or an OpenMM platform name.
     seed : int
@@ -100,6 +110,7 @@ class DemoSettings:
 
     mode: str = "2d"
     length_ns: float = FULL_LENGTH_NS
+    until_converged: bool = False
     platform: str = "auto"
     seed: int = 2024
     temperature: float = 300.0
@@ -119,10 +130,13 @@ class DemoSettings:
 
     @classmethod
     def from_options(cls, *, mode="2d", quick=False, length_ns=None, platform="auto", seed=2024):
-        """Settings from the command's options; ``length_ns`` overrides ``quick``."""
+        """Settings from the command's options; ``length_ns`` overrides ``quick``; with neither, the run
+        stops when converged (at most ``MAX_LENGTH_NS``)."""
+        until_converged = length_ns is None and not quick
         if length_ns is None:
-            length_ns = QUICK_LENGTH_NS if quick else FULL_LENGTH_NS
-        return cls(mode=mode, length_ns=float(length_ns), platform=platform, seed=int(seed))
+            length_ns = QUICK_LENGTH_NS if quick else MAX_LENGTH_NS
+        return cls(mode=mode, length_ns=float(length_ns), until_converged=until_converged, platform=platform,
+                   seed=int(seed))
 
     @property
     def n_steps(self) -> int:

@@ -51,49 +51,8 @@ class _StopRequest:
             signal.signal(sig, handler)
 
 
-class _FrameLog:
-    """An OpenMM reporter that logs step, time, phi, psi and the bias the frame felt (reweight mode).
-
-    The adapter's own log holds the biased CVs only; here psi is not biased but is needed per frame, so
-    the demo writes a log of the same layout with psi added. It must come before the bias reporter in
-    ``simulation.reporters``, so that at a deposit step it logs the bias in effect before the deposit.
-    """
-
-    def __init__(self, path, link, quads, every):
-        from ..cvlog import CVLogWriter
-
-        self._link = link
-        self._quads = np.asarray(quads)
-        self._every = every
-        metadata = {"cvs": link.describe_cvs(), "grid": link.bias.grid.to_dict(),
-                    "temperature": link.bias.temperature, "bias_factor": link.bias.bias_factor,
-                    "stride": every,
-                    "observables": [{"name": "psi", "kind": "dihedral", "atoms": [int(a) for a in quads[1]]}]}
-        self._writer = CVLogWriter(path, ["step", "time", "phi", "psi", "bias"],
-                                   ["1", "ps", "rad", "rad", "kJ/mol"], metadata)
-
-    def describeNextReport(self, simulation):
-        steps = self._every - simulation.currentStep % self._every
-        return {"steps": steps, "periodic": False, "include": ["positions"]}
-
-    def report(self, simulation, state):
-        from ..openmm._units import in_md_units
-        from .dipeptide import dihedral_angles
-
-        phi, psi = dihedral_angles(in_md_units(state.getPositions(asNumpy=True)), self._quads)
-        energy, _ = self._link.bias.evaluate([phi])
-        self._writer.write([float(simulation.currentStep), float(in_md_units(state.getTime())), phi, psi,
-                            energy])
-
-    def restored(self, step):
-        self._writer.truncate_after(step)
-
-    def close(self):
-        self._writer.close()
-
-
 # ---------------------------------------------------------------------------------------------- the run
-def _choose_platform(requested, system, positions, stream, checkpoint_platform):
+def _choose_platform(requested, system, positions, stream, checkpoint_platform, probe, stride):
     from .dipeptide import fastest_platform
 
     if requested != "auto":
@@ -102,9 +61,9 @@ def _choose_platform(requested, system, positions, stream, checkpoint_platform):
         say(stream, f"platform: {checkpoint_platform} (the one the checkpoint was written on, so the run "
                      "continues bit for bit)")
         return checkpoint_platform
-    name, rates = fastest_platform(system, positions, seconds=0.5)
+    name, rates = fastest_platform(system, positions, seconds=0.5, attach=probe, stride=stride)
     timed = ", ".join(f"{p} {r:,.0f} steps/s" for p, r in sorted(rates.items(), key=lambda x: -x[1]))
-    say(stream, f"platform: {name} (timed: {timed})")
+    say(stream, f"platform: {name} (timed with the bias attached and depositing: {timed})")
     return name
 
 
@@ -122,7 +81,8 @@ def _status_line(settings, step, bias, started_step, started, mode_name):
     from ..progress import format_duration
 
     speed = f"{rate * TIMESTEP * 86400 / 1000:,.0f} ns/day" if math.isfinite(rate) else "-"
-    return (f"{mode_name}: {ns:6.3f} / {total_ns:g} ns | {bias.n_hills:,} hills | height {height} | "
+    total = f"until converged, at most {total_ns:g}" if settings.until_converged else f"{total_ns:g}"
+    return (f"{mode_name}: {ns:6.3f} / {total} ns | {bias.n_hills:,} hills | height {height} | "
             f"{speed} | ETA {format_duration(eta)}")
 
 
@@ -139,6 +99,11 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
         say(stream, f"the run in {folder} already reached {previous.time / 1000:g} ns (asked: "
                      f"{settings.length_ns:g} ns); analysing it again")
         return True, previous.step, {"platform": previous.platform, "steps_per_second": math.nan}
+    recorded = _recorded_decision(checkpoint, settings) if previous is not None else None
+    if recorded is not None:
+        say(stream, f"the run in {folder} has already stopped ({recorded}); analysing it again")
+        return True, previous.step, {"platform": previous.platform, "steps_per_second": math.nan,
+                                     "decision": str(recorded)}
     if previous is None and os.path.exists(frames):
         os.unlink(frames)  # frames of a run that never reached its first checkpoint
 
@@ -152,21 +117,20 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
     bias = gbo.make_bias(cvs, lower=[-math.pi] * d, upper=[math.pi] * d, bins=[settings.bins] * d,
                          sigma=[settings.sigma] * d, height=settings.height, temperature=settings.temperature,
                          bias_factor=settings.bias_factor)
+    def probe(system_copy, name):  # what each platform would run: its route, a copy of the bias
+        return gbo.attach(system_copy, cvs, bias.copy(), platform=name)
+
     platform = _choose_platform(settings.platform, system, positions, stream,
-                                None if previous is None else previous.platform)
-    # On the Reference platform (the fastest for 22 atoms) the CustomCVForce route is cheaper per step and per
-    # table push than the compound route (bench/README.md, "OpenMM adapter"); elsewhere the compound route is.
-    link = gbo.attach(system, cvs, bias, route="cvforce" if platform == "Reference" else "compound")
+                                None if previous is None else previous.platform, probe, settings.stride)
+    # attach picks the route for the platform (gridbias.openmm.routes; bench/README.md, "OpenMM adapter").
+    link = gbo.attach(system, cvs, bias, platform=platform)
     simulation = make_simulation(topology, system, positions, temperature=settings.temperature,
                                  platform=platform, seed=settings.seed)
     write_pdb(os.path.join(folder, START), topology, positions)  # after the checks that may refuse the run
-    frame_log = None
-    if settings.mode == "reweight":
-        frame_log = _FrameLog(frames, link, (phi_atoms, psi_atoms), settings.stride)
-        simulation.reporters.append(frame_log)
+    # Reweight mode: psi is not biased but logged beside phi at every record, for reweighting afterwards.
+    observables = [gbo.dihedral(*psi_atoms, name="psi")] if settings.mode == "reweight" else []
     reporter = link.reporter(settings.stride, checkpoint=checkpoint,
-                             checkpoint_every=settings.checkpoint_every,
-                             log=None if frame_log is not None else frames)
+                             checkpoint_every=settings.checkpoint_every, log=frames, observables=observables)
     simulation.reporters.append(reporter)
     try:
         if previous is not None:
@@ -175,43 +139,93 @@ def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
             except CheckpointError as exc:
                 raise CheckpointError(f"{exc}; the checkpoint was written with other demo settings: start "
                                       f"again with --fresh, or use another --out folder") from exc
-            if frame_log is not None:
-                frame_log.restored(restored.step)
             say(stream, f"continuing from {checkpoint} at {restored.time / 1000:g} ns "
                          f"({link.bias.n_hills:,} hills)")
-        return _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream, progress,
-                        platform)
+        return _advance(simulation, link, reporter, checkpoint, settings, stream, progress, platform)
     finally:
         reporter.close()
-        if frame_log is not None:
-            frame_log.close()
 
 
-def _advance(simulation, link, reporter, frame_log, checkpoint, settings, stream, progress, platform):
-    """Step in chunks until the target step or a stop request; write the checkpoint at the end."""
+#: Share of the demo's wall-clock time its convergence checks may take. A check replays the hills and
+#: reweights every frame (about 2.5 s at 5 ns here), while this tiny molecule runs 5 ns in a minute: at the
+#: library's default 1 % the demo would look about twice per run and stop long after the verdict holds.
+DEMO_CHECK_FRACTION = 0.1
+
+
+def _rules(settings):
+    """The demo's stop rules: its length, and with ``until_converged`` the convergence verdict."""
+    from ..stopping import Converged, MaxSteps
+
+    rules = MaxSteps(settings.n_steps)
+    return Converged(max_cost_fraction=DEMO_CHECK_FRACTION) | rules if settings.until_converged else rules
+
+
+def _recorded_decision(checkpoint, settings):
+    """The stop decision in the checkpoint if it still ends the run under these settings, else None."""
+    from ..runs import read_run_checkpoint
+    from ..stopping import Referee, StopDecision
+
+    saved = read_run_checkpoint(checkpoint)
+    decision = None if saved.stop is None else StopDecision.from_dict(saved.stop)
+    return decision if Referee(_rules(settings), None).confirms(decision) else None
+
+
+def _frames(path, labels, writer_owner):
+    """A callable reading (times, cvs, bias) of every frame in the demo's CV log, for the stop rules."""
+
+    def load():
+        from ..cvlog import read_cvlog
+
+        if writer_owner._writer is not None:
+            writer_owner._writer.flush()
+        if not os.path.exists(path):
+            return None
+        frames = read_cvlog(path)
+        if frames.n_records == 0:
+            return None
+        cvs = np.column_stack([frames.column(c) for c in labels])
+        return frames.column("time"), cvs, frames.column("bias")
+
+    return load
+
+
+def _advance(simulation, link, reporter, checkpoint, settings, stream, progress, platform):
+    """Step in chunks until a stop rule holds or a stop is requested; write the checkpoint at the end."""
+    from ..openmm._units import in_md_units
+    from ..stopping import Progress, Referee
+
     mode_name = SUBFOLDERS[settings.mode]
     chunk = settings.stride * 20
     started_step = simulation.currentStep
     started = time.monotonic()
+    referee = Referee(_rules(settings), link.bias)
+    frames_path = os.path.join(os.path.dirname(checkpoint), FRAMES)
+    decision = None
+
+    def look(loader=None):
+        step = simulation.currentStep
+        now = float(in_md_units(simulation.context.getState().getTime()))
+        return Progress(step, now, link.bias, referee.elapsed(), referee.seconds_per_step(step), loader)
+
     with _StopRequest() as stop:
-        while simulation.currentStep < settings.n_steps and not stop.asked:
-            simulation.step(min(chunk, settings.n_steps - simulation.currentStep))
+        while decision is None and not stop.asked:
+            simulation.step(referee.stretch(look(), chunk))
+            decision = referee.decide(look(_frames(frames_path, link.labels(), reporter)))
+            referee.restart_clock(simulation.currentStep)
             progress.update(_status_line(settings, simulation.currentStep, link.bias, started_step, started,
                                          mode_name))
         line = _status_line(settings, simulation.currentStep, link.bias, started_step, started, mode_name)
         # The frames logged so far reach the disk before the checkpoint that matches them (as the
         # adapter's reporter does before each of its checkpoints); the reporter keeps the checkpoint
         # locked until the final one is written.
-        fsync_path(os.path.join(os.path.dirname(checkpoint), FRAMES))
-        link.save(simulation, checkpoint)
+        fsync_path(frames_path)
+        link.save(simulation, checkpoint, stop=None if decision is None else decision.to_dict())
         reporter.close()
-        if frame_log is not None:
-            frame_log.close()
     progress.finish(line)
     elapsed = time.monotonic() - started
     done = simulation.currentStep - started_step
     info = {"platform": platform, "steps_per_second": done / elapsed if elapsed > 0 else math.nan,
-            "wall_seconds": elapsed}
+            "wall_seconds": elapsed, "decision": None if decision is None else str(decision)}
     if stop.asked:
         say(stream, f"stopped at step {simulation.currentStep:,}; the checkpoint {checkpoint} is written. "
                      "Run the same command again to continue.")

@@ -17,18 +17,19 @@ calls raise ImportError naming ``pip install 'gridbias[openmm]'``.
 Units: bare numbers are OpenMM's defaults (nm, rad, kJ/mol, K, ps); ``openmm.unit`` quantities are
 converted wherever a physical value goes in.
 
-How the engine applies the bias (measured in bench/bench_engine.py, figures in bench/README.md): the grid
-is an OpenMM tabulated function of the CVs in a force of its own whose expression holds nothing else,
-because re-sending a table (``updateParametersInContext``, milliseconds) recompiles that force's
-expression. The newest hills are exact Gaussians in a second force whose heights and centres are global
-parameters (``Context.setParameter``, microseconds); every ``pending_hills + 1`` deposits they are folded
-into the table with one push. Walls live in that second force too, which is never re-sent, so they cost
-nothing per push (on the CustomCVForce route both are terms of the one outer expression, whose recompile
-is cheap). The engine's bias equals ``bias.evaluate`` up to the difference between an exact
-Gaussian and its splined image on the grid for the hills not yet folded (measured with 8 pending hills:
-1e-4 of a hill's height at sigma = 4 grid spacings, 6e-4 at 3, 4e-3 at 2; ``pending_hills=0`` removes
-it), and to rounding right after a fold (or to the padding error of a mixed-periodicity table, ~1e-7 of
-the surface's amplitude).
+How the engine applies the bias (measured in bench/bench_engine.py, figures in bench/README.md) depends
+on the route, chosen per platform by ``attach`` (``route="auto"``; gridbias.openmm.routes has the rule):
+
+- ``"cvforce"`` (Reference platform; any ``from_force`` CV): one CustomCVForce whose discrete tables
+  hold the core's own spline coefficients, the cubic Hermite written out in its expression. Every
+  deposit is pushed (a copy of numbers, no refit), so the engine applies exactly ``bias.evaluate`` at
+  every step (to rounding: 1e-15 of the bias's range in double precision).
+- ``"compound"`` (CPU and GPU platforms): the CVs inside one custom bond force carrying the grid as a
+  continuous table, which OpenMM refits and recompiles at every push (milliseconds); the newest hills are
+  exact Gaussians in a second force driven by global parameters (``Context.setParameter``,
+  microseconds) and are folded into the table every ``pending_hills + 1`` deposits. Between folds the
+  engine differs from ``bias.evaluate`` by the grid's interpolation error of the pending hills (1e-4 of
+  a hill's height at sigma = 4 grid spacings, 6e-4 at 3, 4e-3 at 2; ``pending_hills=0`` removes it).
 """
 
 from __future__ import annotations
@@ -44,7 +45,9 @@ from ..grid import Grid
 from ..runs import CHECKPOINT_KIND
 from ..walls import Wall
 from . import cvs as _cvs
+from . import routes as _routes
 from ._units import cv_unit_name, in_md_units, is_quantity, per_cv
+from .advice import advise_from_simulation
 from .forces import PERIODIC_PADDING, EngineBias, check_route, require_openmm, same_object
 from .link import DEFAULT_MAX_WRITE_FAILURES, BiasLink, BiasReporter
 
@@ -58,10 +61,10 @@ __all__ = [
     "from_force",
     "make_bias",
     "attach",
+    "advise_from_simulation",
     "BiasLink",
     "BiasReporter",
     "DEFAULT_FORCE_GROUP",
-    "DEFAULT_PENDING_HILLS",
     "DEFAULT_MAX_WRITE_FAILURES",
     "PERIODIC_PADDING",
     "CHECKPOINT_KIND",
@@ -70,13 +73,6 @@ __all__ = [
 #: Force group of the bias forces: the last of OpenMM's 32 groups, which force fields leave free, so
 #: ``context.getState(getEnergy=True, groups={31})`` reads the bias energy alone.
 DEFAULT_FORCE_GROUP = 31
-
-#: Hills held as exact Gaussians between two table pushes. A push costs P once per K + 1 deposits, but every
-#: pending-hill slot costs c at every step (both measured in bench/README.md, "The deposit path"), so the
-#: cost per deposit is P / (K + 1) + K c stride; K = 4 is near the optimum sqrt(P / (c stride)) on the CPU
-#: and Reference platforms for strides of 250-1000 steps (bench/README.md). On GPUs, where c is tiny,
-#: a larger K pays.
-DEFAULT_PENDING_HILLS = 4
 
 
 # ---------------------------------------------------------------------------------------------- CV builders
@@ -204,8 +200,8 @@ def _check_grid(cvs, grid):
                 "axis spanning exactly one period, e.g. lower=-pi, upper=pi")
 
 
-def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=DEFAULT_PENDING_HILLS,
-           route="compound", name="gridbias"):
+def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, route="auto", platform=None,
+           pending_hills=None, name="gridbias"):
     """Add the forces that apply ``bias`` as a function of ``cvs`` to ``system``.
 
     Call it once the System is complete (its periodicity is read here) and before the Simulation (or
@@ -221,16 +217,22 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=
         0..31 (default 31, the last group, which force fields leave free). The bias energy is
         ``getState(getEnergy=True, groups={force_group})``. An integrator that integrates selected
         groups only (multiple time steps) must include this one.
-    pending_hills : int, keyword-only
-        Hills applied as exact Gaussians before they are folded into the table (0: push the whole
-        table at every deposit). See bench/README.md for the trade-off.
-    route : {"compound", "cvforce"}, keyword-only
-        "compound" (default): the CVs are computed inside one CustomCompoundBondForce (or
-        CustomCentroidBondForce); no extra Context, so the cheapest per step on the CPU platform and the
-        natural choice for GPUs. "cvforce": one CustomCVForce with the CVs as inner forces; on the
-        Reference platform (the fastest for systems of a few dozen atoms) it is cheaper both per step and
-        per push (bench/README.md, "The deposit path"), but its inner Context costs time at every step on the
-        CPU platform. Required for ``from_force`` CVs (chosen automatically then).
+    route : {"auto", "cvforce", "compound"}, keyword-only
+        How the engine applies the bias (module docstring; bench/README.md has the measurements).
+        "auto" (default) picks the cheaper one for ``platform``: "cvforce" on Reference (exact at every
+        step: the core's spline coefficients as tables, pushed at every deposit), "compound" on CPU and
+        GPU platforms (a continuous table + pending exact-Gaussian hills; no inner Context, whose cost
+        per step on the CPU platform exceeds what the cheap pushes save). ``from_force`` CVs always use
+        "cvforce"; with "auto", ``pending_hills`` > 0 selects "compound" (the only route that holds them).
+    platform : str or openmm.Platform, keyword-only
+        The platform the Simulation will run on, for ``route="auto"``. Default: the one OpenMM picks
+        when none is named (the fastest available). A link bound to another platform than planned logs
+        a notice when the other route would have been cheaper there.
+    pending_hills : int or None, keyword-only
+        Compound route: hills applied as exact Gaussians before they are folded into the table (0: push
+        the whole table at every deposit). Default: the count minimising the modelled cost per deposit
+        for this table at a stride of 500 steps (4 for a 2-D 129 x 129 table, ~24 for 65^3). The
+        cvforce route holds none (it pushes every deposit).
     name : str, keyword-only
         Prefix of the forces' names and of the global parameters (attach two biases with two names).
 
@@ -268,12 +270,23 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=
     if isinstance(force_group, bool) or not isinstance(force_group, (int, np.integer)) \
             or not 0 <= force_group <= 31:
         raise ParameterError(f"force_group must be an integer 0..31, got {force_group!r}")
-    if isinstance(pending_hills, bool) or not isinstance(pending_hills, (int, np.integer)) \
-            or not 0 <= pending_hills <= 64:
-        raise ParameterError(f"pending_hills must be an integer 0..64, got {pending_hills!r}")
-    if not all(cv.geometric for cv in cvs):
-        route = "cvforce"
+    if pending_hills is not None and (isinstance(pending_hills, bool) or not isinstance(
+            pending_hills, (int, np.integer)) or not 0 <= pending_hills <= 64):
+        raise ParameterError(f"pending_hills must be an integer 0..64 or None, got {pending_hills!r}")
+    planned = _platform_name(openmm, platform)
+    geometric = all(cv.geometric for cv in cvs)
+    auto = route == "auto"
+    if auto:
+        route = "compound" if pending_hills and geometric else _routes.choose(planned, geometric)
     check_route(route, cvs)
+    if route == "cvforce" and pending_hills:
+        raise ParameterError(f"pending_hills={pending_hills!r}: the cvforce route holds no pending hills (it "
+                             "pushes every deposit and is exact); use pending_hills=None or 0, or "
+                             "route='compound'")
+    if route == "cvforce":
+        pending_hills = 0
+    elif pending_hills is None:
+        pending_hills = _routes.pending_for(bias.ndim, _table_nodes(bias.grid))
     if not isinstance(name, str) or not name.isidentifier():
         raise ParameterError(f"name must be an identifier (letters, digits, _), got {name!r}")
     prefix = name + "_"
@@ -288,4 +301,24 @@ def attach(system, cvs, bias, *, force_group=DEFAULT_FORCE_GROUP, pending_hills=
     resolved = [cv.resolved(system) for cv in cvs]
     engine = EngineBias(openmm, system, resolved, bias, route=route, pending=int(pending_hills),
                         group=int(force_group), prefix=prefix)
-    return BiasLink(system, resolved, bias, engine, int(force_group), name)
+    link = BiasLink(system, resolved, bias, engine, int(force_group), name)
+    link._plan = (planned, auto and not pending_hills)  # pending hills, not the platform, chose compound
+    return link
+
+
+def _platform_name(openmm, platform):
+    """The name of the platform given (a name or an openmm.Platform), or OpenMM's default one."""
+    if platform is None:
+        return _routes.default_platform(openmm)
+    if isinstance(platform, openmm.Platform):
+        return platform.getName()
+    names = [openmm.Platform.getPlatform(i).getName() for i in range(openmm.Platform.getNumPlatforms())]
+    if platform not in names:
+        raise ParameterError(f"platform must be an openmm.Platform or one of the available platform names "
+                             f"{names}, got {platform!r}")
+    return platform
+
+
+def _table_nodes(grid) -> int:
+    """Nodes of the compound route's table (periodic axes closed with one more node)."""
+    return int(np.prod([b + 1 for b in grid.bins]))

@@ -28,6 +28,7 @@ import math
 import numpy as np
 
 from ..errors import ParameterError
+from .hermite import HermiteTables, index_coordinate
 
 __all__ = ["PERIODIC_PADDING", "TableLayout", "EngineBias", "require_openmm", "same_object"]
 
@@ -202,28 +203,46 @@ class EngineBias:
         self.pending = int(pending)
         self.prefix = prefix
         grid = bias.grid
-        ranges = [(cv.value_range if cv.value_range is not None else (float(grid.lower[i]), float(grid.upper[i])))
-                  if grid.periodic[i] else None for i, cv in enumerate(cvs)]
-        self.layout = TableLayout(grid, ranges)
-        table = f"{prefix}table"
-        call = f"{table}({','.join(f'cv{i}' for i in range(grid.ndim))})"
         hill_term, self.parameter_names = _hill_terms(bias, self.pending, prefix)
         wall_terms = _wall_terms(bias.walls)
         extra = ([hill_term] if hill_term else []) + wall_terms
         periodic_box = self.periodic_box = system.usesPeriodicBoundaryConditions()
-        function = self.layout.make_function(openmm, bias.values)
         self.hill_force = None
+        self.layout = self.hermite = None
         if route == "cvforce":
-            force = openmm.CustomCVForce("+".join([call] + extra))
+            # The core's spline coefficients as discrete tables, the Hermite patch written out (exact).
+            # A geometric CV's inner force returns its index coordinate (0 at the grid's lower limit, 1 per
+            # spacing), which keeps the expression OpenMM compiles and differentiates short (3-D: 2.3 s ->
+            # see bench/README.md); the CV itself, for walls, is defined from it.
+            self.hermite = HermiteTables(grid, prefix)
+            body, _, definitions = self.hermite.energy.partition("; ")
+            coordinates = []
             for i, cv in enumerate(cvs):
-                force.addCollectiveVariable(f"cv{i}", _inner_force(openmm, cv, periodic_box))
-            force.addTabulatedFunction(table, function)
+                lo, h = float(grid.lower[i]), float(grid.spacing[i])
+                if cv.geometric:
+                    coordinates.append(f"cv{i}={lo!r}+({h!r})*{prefix}u{i}")
+                else:
+                    coordinates.append(f"{prefix}u{i}={index_coordinate(f'cv{i}', grid, i)}")
+            force = openmm.CustomCVForce("; ".join(["+".join([body] + extra), definitions] + coordinates))
+            for i, cv in enumerate(cvs):
+                affine = (float(grid.lower[i]), float(grid.spacing[i])) if cv.geometric else None
+                force.addCollectiveVariable(f"{prefix}u{i}" if cv.geometric else f"cv{i}",
+                                            _inner_force(openmm, cv, periodic_box, affine))
+            functions = self.hermite.make_functions(openmm, bias._coef)
+            for name, function in zip(self.hermite.names, functions, strict=True):
+                force.addTabulatedFunction(name, function)
             self._add_parameters(force)
             self.table_force = force
             forces = [force]
         else:
+            ranges = [(cv.value_range if cv.value_range is not None
+                       else (float(grid.lower[i]), float(grid.upper[i]))) if grid.periodic[i] else None
+                      for i, cv in enumerate(cvs)]
+            self.layout = TableLayout(grid, ranges)
+            table = f"{prefix}table"
+            call = f"{table}({','.join(f'cv{i}' for i in range(grid.ndim))})"
             self.table_force = self._bond_force(openmm, cvs, call, periodic_box)
-            self.table_force.addTabulatedFunction(table, function)
+            self.table_force.addTabulatedFunction(table, self.layout.make_function(openmm, bias.values))
             forces = [self.table_force]
             if extra:
                 self.hill_force = self._bond_force(openmm, cvs, "+".join(extra), periodic_box)
@@ -262,10 +281,18 @@ class EngineBias:
         return force
 
     # -- updates ----------------------------------------------------------------------------------
-    def push_table(self, context, values):
-        """Copy the core's node values into the table and into the Context (the expensive call)."""
-        fn = self.table_force.getTabulatedFunction(0)
-        fn.setFunctionParameters(*self.layout.function_arguments(values))
+    def push_table(self, context, values, coef=None):
+        """Copy the bias into the table(s) and into the Context (the expensive call).
+
+        values : grid.shape float, the node values (the continuous table of the compound route);
+        coef : the core's coefficient array (``GridBias._coef``) whose ``coef[0]`` is ``values``, needed by
+        the cvforce route, whose tables hold every coefficient.
+        """
+        if self.hermite is not None:
+            self.hermite.set_values(self.table_force, 0, coef)
+        else:
+            fn = self.table_force.getTabulatedFunction(0)
+            fn.setFunctionParameters(*self.layout.function_arguments(values))
         self.table_force.updateParametersInContext(context)
 
     def set_slot(self, context, j, center, height):
@@ -278,18 +305,23 @@ class EngineBias:
             context.setParameter(f"{self.prefix}h{j}", 0.0)
 
 
-def _inner_force(openmm, cv, periodic_box):
-    """A force whose energy is the CV, for CustomCVForce."""
+def _inner_force(openmm, cv, periodic_box, affine):
+    """A force whose energy is the geometric CV mapped by ``affine = (lower, spacing)`` to
+    ``(cv - lower) / spacing``, or a copy of a ``from_force`` CV's force (``affine`` None)."""
+    def mapped(x):
+        return f"({x}-({affine[0]!r}))/({affine[1]!r})"
+
     force = cv.single_force(openmm)
     if force is None:
-        return EngineBias._bond_force(openmm, [cv], "cv0", periodic_box)
+        return EngineBias._bond_force(openmm, [cv], mapped("cv0"), periodic_box)
     if cv.geometric:
+        force.setEnergyFunction(mapped(force.getEnergyFunction()))
         force.setUsesPeriodicBoundaryConditions(periodic_box)
     return force
 
 
 def check_route(route, cvs):
     if route not in ("compound", "cvforce"):
-        raise ParameterError(f"route must be 'compound' or 'cvforce', got {route!r}")
+        raise ParameterError(f"route must be 'auto', 'compound' or 'cvforce', got {route!r}")
     if route == "compound" and not all(cv.geometric for cv in cvs):
         raise ParameterError("route='compound' needs geometric CVs only; from_force CVs need route='cvforce'")

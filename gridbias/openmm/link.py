@@ -20,6 +20,7 @@ from ..errors import BlownUpError, CheckpointError, ParameterError, WriteError
 from ..runs import RunCheckpoint, read_run_checkpoint, write_run_checkpoint
 from ._units import in_md_units
 from .forces import require_openmm, same_object
+from .observables import Observables
 
 __all__ = ["BiasLink", "BiasReporter", "DEFAULT_MAX_WRITE_FAILURES", "MAX_COORDINATE", "MAX_SPEED"]
 
@@ -54,13 +55,15 @@ class BiasLink:
         self._bias = bias
         self._engine = engine
         self._context = None  # the Context the engine state below belongs to
-        self._folded_values = np.array(bias.values, copy=True)
+        self._folded_values = self._folded_copy(bias.values)
         self._n_folded = bias.n_hills
         self._n_pending = 0
         self._engine_cvs = [i for i, cv in enumerate(self.cvs) if not cv.geometric]
         self._periodic_box = engine.periodic_box
         self._reporters = weakref.WeakSet()
+        self._plan = (None, False)  # (platform the route was chosen for, chosen automatically); set by attach
         self._blown_up_at = None  # step at which the run was declared blown up (cleared by restore)
+        self.restored_stop = None  # the stop decision of the last checkpoint restored (dict), if any
 
     # -- properties -------------------------------------------------------------------------------
     bias = property(lambda self: self._bias, doc="The GridBias being applied (restore loads into it).")
@@ -103,6 +106,11 @@ class BiasLink:
         return float(in_md_units(state.getPotentialEnergy()))
 
     # -- engine state -----------------------------------------------------------------------------
+    def _folded_copy(self, values):
+        """The table's node values to remember, or None when the engine holds no pending hills (then the
+        table is the bias itself at every step and nothing needs copying)."""
+        return None if self._engine.pending == 0 else np.array(values, copy=True)
+
     def _bind(self, context):
         """Make sure the engine in ``context`` applies the current bias (first use, or a new Context)."""
         if self._context is context and self._n_folded + self._n_pending == self._bias.n_hills:
@@ -110,11 +118,24 @@ class BiasLink:
         if not same_object(context.getSystem(), self.system):
             raise ParameterError("this simulation's System is not the one the bias was attached to; "
                                  "call gbo.attach on the System you pass to the Simulation")
+        self._check_plan(context.getPlatform().getName())
         self._fold(context)
+
+    def _check_plan(self, platform):
+        """Log a notice when the route was chosen automatically for another platform than this one and
+        would differ here."""
+        from .routes import choose
+
+        planned, auto = self._plan
+        self._plan = (planned, False)  # one notice per link
+        if auto and planned != platform and choose(platform, not self._engine_cvs) != self.route:
+            _log.warning("the bias route %r was chosen for the %s platform, but this Context runs on %s, "
+                         "where route %r is cheaper: pass platform=%r to gbo.attach", self.route, planned, platform,
+                         choose(platform, not self._engine_cvs), platform)
 
     def _fold(self, context):
         try:
-            self._engine.push_table(context, self._bias.values)
+            self._engine.push_table(context, self._bias.values, self._bias._coef)
         except Exception as exc:
             if "not present in the Context" in str(exc):
                 raise ParameterError(
@@ -124,7 +145,7 @@ class BiasLink:
             raise
         self._engine.clear_slots(context, self._engine.pending if self._context is not context else self._n_pending)
         self._context = context
-        self._folded_values = np.array(self._bias.values, copy=True)
+        self._folded_values = self._folded_copy(self._bias.values)
         self._n_folded = self._bias.n_hills
         self._n_pending = 0
 
@@ -155,20 +176,21 @@ class BiasLink:
 
     # -- checkpoints ------------------------------------------------------------------------------
     def reporter(self, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
-                 max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
+                 observables=(), max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
         """A reporter that deposits every ``stride`` steps; see :class:`BiasReporter`."""
         rep = BiasReporter(self, stride, checkpoint=checkpoint, checkpoint_every=checkpoint_every, log=log,
-                           log_every=log_every, max_write_failures=max_write_failures)
+                           log_every=log_every, observables=observables, max_write_failures=max_write_failures)
         self._reporters.add(rep)
         return rep
 
-    def save(self, simulation, path) -> None:
+    def save(self, simulation, path, *, stop: dict | None = None) -> None:
         """Write one checkpoint with the bias, the engine's own checkpoint and a portable MD state.
 
         The file (a run checkpoint, layout in :mod:`gridbias.runs`) is replaced atomically. Nothing is
         written (BlownUpError, the last good file stays) when positions or velocities are not finite or
         beyond ``MAX_COORDINATE`` / ``MAX_SPEED``, nor after the run was declared blown up (until a good
-        checkpoint is restored).
+        checkpoint is restored). ``stop`` records a stop decision (``StopDecision.to_dict()``; see
+        :meth:`run_until`).
         """
         openmm = require_openmm()
         context = _context_of(simulation)
@@ -192,10 +214,28 @@ class BiasLink:
             n_particles=self.system.getNumParticles(), bias_state=bias_state, bias_arrays=bias_arrays,
             engine={"route": self.route, "pending_hills": self.pending_hills, "n_folded": self._n_folded,
                     "n_pending": self._n_pending, "name": self.name},
-            folded_values=self._folded_values, md_checkpoint=context.createCheckpoint(),
+            folded_values=self._bias.values if self._folded_values is None else self._folded_values,
+            md_checkpoint=context.createCheckpoint(),
             positions=positions, velocities=velocities,
             box=np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)), dtype=float),
-            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z")))
+            openmm_version=openmm.__version__, written=_time.strftime("%Y-%m-%dT%H:%M:%S%z"), stop=stop))
+
+    def run_until(self, simulation, rules, *, stretch: int | None = None):
+        """Run until a stop rule holds, write a final checkpoint with the decision, and return it.
+
+        Needs this link's reporter (with ``checkpoint=``, and ``log=`` for rules that read frames) in
+        ``simulation.reporters``. If the checkpoint exists and the run has not been restored yet, it is
+        restored first; when it records a decision that still holds under ``rules`` (see
+        ``gridbias.stopping.Referee.confirms``), nothing more is run. With walkers (a shared bias), every
+        walker calls it and all stop together. See :func:`gridbias.openmm.until.run_until`.
+
+        Returns
+        -------
+        gridbias.stopping.StopDecision
+        """
+        from .until import run_until
+
+        return run_until(self, simulation, rules, stretch=stretch)
 
     def restore(self, simulation, path) -> RunCheckpoint:
         """Continue from a checkpoint: restores the bias, the MD state and the engine's bias exactly.
@@ -222,6 +262,7 @@ class BiasLink:
         except CheckpointError as exc:
             raise CheckpointError(f"run checkpoint {os.fspath(path)!r}: {exc}") from exc
         folded, n_folded = checkpoint.folded_values, checkpoint.engine["n_folded"]
+        self.restored_stop = checkpoint.stop
         diff = self._bias.describe_difference(bias)
         if diff:
             raise CheckpointError(f"{path}: the bias {diff} (this run vs checkpoint)")
@@ -265,13 +306,13 @@ class BiasLink:
             self._context = context
             self._fold(context)
             return
-        self._engine.push_table(context, folded)
+        self._engine.push_table(context, folded, self._bias._coef)
         self._engine.clear_slots(context, self._engine.pending)
         centers, heights = self._bias.history.centers, self._bias.history.heights
         for j in range(pending):
             self._engine.set_slot(context, j, centers[n_folded + j], heights[n_folded + j])
         self._context = context
-        self._folded_values = np.array(folded, copy=True)
+        self._folded_values = self._folded_copy(folded)
         self._n_folded = n_folded
         self._n_pending = pending
 
@@ -326,8 +367,11 @@ class BiasReporter:
     Every ``stride`` steps it reads the CVs, deposits a hill and updates the engine; every
     ``checkpoint_every`` steps it writes the checkpoint (after that step's deposit); every ``log_every``
     steps (default ``stride``) it appends ``step, time, CVs, bias`` to the CV log, the bias being the one
-    in effect during that step (before its deposit). It holds a CheckpointLock on the checkpoint path
-    until ``close()`` (or until it is garbage-collected).
+    in effect during that step (before its deposit), followed by the ``observables``: any CVs of this
+    module (``distance``, ``dihedral``, ``from_force`` of any Force, ...), each with ``name=`` (its column),
+    logged and never biased. Geometric observables cost microseconds per record; ``from_force`` ones are
+    evaluated in a Context of their own at the records only. It holds a CheckpointLock on the checkpoint
+    path until ``close()`` (or until it is garbage-collected).
 
     NaN CV values stop the run with an error naming the step and the last checkpoint written.
 
@@ -352,7 +396,7 @@ class BiasReporter:
     """
 
     def __init__(self, link, stride, *, checkpoint=None, checkpoint_every=None, log=None, log_every=None,
-                 max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
+                 observables=(), max_write_failures=DEFAULT_MAX_WRITE_FAILURES):
         self._link = link
         self.stride = _steps("stride", stride)
         if checkpoint is None and checkpoint_every is not None:
@@ -365,6 +409,9 @@ class BiasReporter:
             raise ParameterError("log_every needs log= (a file path)")
         self.log = None if log is None else os.fspath(log)
         self.log_every = None if log is None else _steps("log_every", self.stride if log_every is None else log_every)
+        self._observables = Observables(link.system, observables, link.labels())
+        if len(self._observables) and log is None:
+            raise ParameterError("observables are written to the CV log: give log= (a file path)")
         limit = max_write_failures
         if isinstance(limit, bool) or not isinstance(limit, (int, np.integer)) or limit < 1:
             raise ParameterError("max_write_failures must be an integer >= 1 (1: stop at the first "
@@ -393,7 +440,9 @@ class BiasReporter:
         steps = min(e - step % e for e in (self.stride, self.checkpoint_every, self.log_every) if e is not None)
         nxt = step + steps
         need_cvs = self._due(nxt, self.stride) or self._due(nxt, self.log_every)
-        include = ["positions"] if need_cvs and any(cv.geometric for cv in self._link.cvs) else []
+        need_positions = any(cv.geometric for cv in self._link.cvs) or (
+            self._observables.needs_positions and self._due(nxt, self.log_every))
+        include = ["positions"] if need_cvs and need_positions else []
         return {"steps": steps, "periodic": False, "include": include}
 
     def _start(self, simulation):
@@ -418,10 +467,12 @@ class BiasReporter:
             from ..cvlog import CVLogWriter
 
             labels = link.labels()
-            columns = ["step", "time"] + labels + ["bias"]
-            units = ["1", "ps"] + [cv.unit for cv in link.cvs] + ["kJ/mol"]
+            columns = ["step", "time"] + labels + ["bias"] + self._observables.names
+            units = ["1", "ps"] + [cv.unit for cv in link.cvs] + ["kJ/mol"] + self._observables.units
             meta = {"cvs": link.describe_cvs(), "grid": grid.to_dict(), "temperature": link.bias.temperature,
                     "bias_factor": link.bias.bias_factor, "stride": self.stride, "run_id": link.bias.run_id}
+            if len(self._observables):
+                meta["observables"] = self._observables.describe()
             self._writer = CVLogWriter(self.log, columns, units, meta)
             if self._restored_step is not None:
                 self._writer.truncate_after(self._restored_step)
@@ -458,7 +509,8 @@ class BiasReporter:
             t = float(in_md_units(state.getTime()))
             if log_due:
                 energy, _ = link.bias.evaluate(s)
-                self._unwritten_rows.append([float(step), t, *s.tolist(), energy])
+                extra = self._observable_values(simulation, state, step) if len(self._observables) else []
+                self._unwritten_rows.append([float(step), t, *s.tolist(), energy, *extra])
                 self._attempt(self.log, step, self._write_rows)
             if deposit_due:
                 link.deposit(simulation, s, time=t)
@@ -473,6 +525,12 @@ class BiasReporter:
     def _write_rows(self):
         self._writer.write(self._unwritten_rows)
         self._unwritten_rows.clear()
+
+    def _observable_values(self, simulation, state, step) -> list:
+        pos_n3 = np.asarray(in_md_units(state.getPositions(asNumpy=True)))
+        box = (np.asarray(in_md_units(state.getPeriodicBoxVectors(asNumpy=True)))
+               if self._link._periodic_box else None)
+        return self._observables.values(simulation.context, pos_n3, box, step)
 
     def _write_checkpoint(self, simulation, step):
         """Flush the CV log, then write the checkpoint, each under the write-failure policy."""

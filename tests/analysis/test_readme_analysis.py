@@ -19,7 +19,9 @@ README = Path(__file__).resolve().parents[2] / "README.md"
 def _analysis_blocks():
     text = README.read_text()
     start = text.index("## Analysing a run")
-    section = text[start:text.index("\n## ", start + 1)]
+    end = text.index("\n## ", start + 1)
+    subsection = text.find("\n### ", start, end)  # its own blocks run in test_readme_reweighting_routes.py
+    section = text[start:end if subsection == -1 else subsection]
     blocks = re.findall(r"```python\n(.*?)```", section, re.S)
     assert blocks, "the README's analysis section has no Python block"
     return blocks
@@ -47,7 +49,7 @@ def test_readme_analysis_on_a_bias_checkpoint(tmp_path, monkeypatch):
     assert Path("surface.png").stat().st_size > 0
     assert namespace["surface"].free_energy.shape == grid.shape
     verdict = namespace["verdict"]
-    assert len(verdict.criteria) == 3  # drift, transitions, height decay (well-tempered)
+    assert len(verdict.criteria) == 4  # drift, transitions, height decay (well-tempered), cross-check
     # 600 hills of a short run: the height criterion cannot hold yet, so the verdict must not say converged.
     assert not verdict.converged
 

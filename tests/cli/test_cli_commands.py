@@ -106,6 +106,19 @@ def test_inspect_with_log_reports_reweighted_differences_with_errors(capsys, run
     assert "cv0: -3.142 .. 3.142 rad, 48 bins" in out  # the log's units, shown in radians as asked
 
 
+def test_inspect_reports_saddle_points_and_barriers_as_the_analysis_finds_them(capsys, run):
+    code, out, err = _run(capsys, "inspect", run["checkpoint"], "--log", run["log"], "--angles", "rad")
+    assert code == 0, err
+    bias = run["bias"]
+    found = analysis.find_basins(bias.grid, bias.free_energy(), bias.kT)
+    crossing = analysis.find_crossings(bias.grid, bias.free_energy(), bias.kT, found)[0]
+    assert "saddle points and barriers" in out
+    assert f"{crossing.basins[0]} <-> {crossing.basins[1]}: saddle at (cv0 {crossing.saddle[0]:.4g}" in out
+    assert f"from {crossing.basins[0]}: {crossing.barriers[0]:8.3f} kJ/mol" in out
+    assert "reweighted frames" in out.split("saddle points and barriers")[1]
+    assert "estimators agree" in out  # with the log's bias column the verdict cross-checks the estimators
+
+
 def test_inspect_thresholds_change_the_verdict(capsys, run):
     _, strict, _ = _run(capsys, "inspect", run["checkpoint"], "--transitions", "1000")
     _, loose, _ = _run(capsys, "inspect", run["checkpoint"], "--transitions", "1")

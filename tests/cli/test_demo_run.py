@@ -104,6 +104,29 @@ def test_a_finished_demo_is_analysed_again_not_rerun(capsys, tiny):
     assert (out / "phi-psi" / "run.gbz").read_bytes() == before
 
 
+def test_without_a_length_the_demo_runs_until_converged_and_records_why(tmp_path, monkeypatch):
+    from gridbias import stopping
+    from gridbias.demo import simulation
+    from gridbias.runs import read_run_checkpoint
+
+    assert DemoSettings.from_options().until_converged and not DemoSettings.from_options(length_ns=1).until_converged
+    assert not DemoSettings.from_options(quick=True).until_converged
+    # The real verdict needs ~10 ns; loosened thresholds make it hold after a few thousand steps, which is
+    # enough to check the wiring: the verdict is asked, stops the run, and is recorded in the checkpoint.
+    easy = dict(min_hills=10, min_transitions=1, max_height_fraction=0.99, tolerance_kT=1e3, agreement_kT=1e3,
+                max_cost_fraction=1.0)
+    monkeypatch.setattr(simulation, "_rules", lambda settings: stopping.Converged(**easy)
+                        | stopping.MaxSteps(settings.n_steps))
+    settings = DemoSettings(platform="Reference", until_converged=True, length_ns=0.1)
+    result = run_demo(tmp_path, settings, stream=io.StringIO())
+    assert result.completed and result.step < settings.n_steps
+    assert "stop         stopped at step" in result.report and "by Converged()" in result.report
+    assert read_run_checkpoint(tmp_path / "phi-psi" / "run.gbz").stop["rule"] == "Converged()"
+    stream = io.StringIO()
+    again = run_demo(tmp_path, settings, stream=stream)
+    assert "has already stopped" in stream.getvalue() and again.step == result.step
+
+
 def test_fresh_starts_again_and_other_settings_are_refused(capsys, tmp_path):
     assert _demo(capsys, tmp_path)[0] == 0
     with pytest.raises(CheckpointError, match="--fresh"):
@@ -139,7 +162,8 @@ def test_tiny_reweight_demo_compares_with_the_2d_run(tiny):
     run = load_run(folder / "run.gbz")
     assert run.names == ("phi",) and run.bias.ndim == 1
     log = read_cvlog(folder / "frames.gbl")
-    assert log.columns == ("step", "time", "phi", "psi", "bias")
+    assert log.columns == ("step", "time", "phi", "bias", "psi")  # psi: an observable of the reporter
+    assert [spec["name"] for spec in log.metadata["observables"]] == ["psi"]
     # The logged bias is the one each frame felt: the bias replayed up to the hills deposited before it.
     t, phi = log.column("time"), log.column("phi")
     for k in (0, 3, 7):

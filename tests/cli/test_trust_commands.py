@@ -150,7 +150,7 @@ def test_a_demo_that_fails_leaves_no_folder(tmp_path, capsys):
     if missing is None:
         pytest.skip("every GPU platform is available here")
     code, _, err = run_cli(capsys, "demo", "--out", tmp_path / "results", "--platform", missing, "--length", "0.0002")
-    assert code == 2 and "is not available" in err
+    assert code == 2 and "available platform names" in err and repr(missing) in err
     assert not (tmp_path / "results").exists()
 
 

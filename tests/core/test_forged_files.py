@@ -112,6 +112,7 @@ def test_contents_that_contradict_the_hills_are_refused(tmp_path, edit, index, v
     ("negative exchanges", lambda m, a: m.update(walkers={"count": 2, "exchanges": -3}), "exchanges = -3 is out"),
     ("infinite time", lambda m, a: a["hill_times"].__setitem__(0, np.inf), "finite or NaN"),
     ("centre outside the grid", lambda m, a: a["hill_centers"].__setitem__((0, 0), 5.0), "inside the grid"),
+    ("periodic centre far out", lambda m, a: a["hill_centers"].__setitem__((1, 1), 2.4e56), "periods of the grid"),
     ("zero height table", lambda m, a: a["coefficients"].__setitem__(Ellipsis, 0.0), "replay of its 12 hills"),
 ])
 def test_examples_of_impossible_states(tmp_path, name, change, match):

@@ -88,9 +88,11 @@ LAYERS = {
     "files": ["errors", "_files", "checkpoint", "cvlog"],
     "core": ["gridbias", "grid", "walls", "history", "_kernels", "bias", "walkers", "testsystems", "_dynamics",
              "_identity", "_consistency", "_bias_state"],
-    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm"],
+    "services": ["analysis", "plots", "exports", "progress", "runs", "openmm", "trajectories", "frame_values",
+                 "stopping", "core_run",
+                 "advice", "_short_run", "_series_files"],
     "application": ["demo"],
-    "entry point": ["cli", "__main__"],
+    "entry point": ["cli", "_cli_options", "_advise_command", "__main__"],
 }
 
 

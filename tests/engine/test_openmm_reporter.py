@@ -233,7 +233,7 @@ def test_bad_attach_arguments():
         gbo.attach(system, [d], ok, force_group=32)
     with pytest.raises(gb.ParameterError, match="pending_hills must be an integer 0..64"):
         gbo.attach(system, [d], ok, pending_hills=-1)
-    with pytest.raises(gb.ParameterError, match="route must be 'compound' or 'cvforce'"):
+    with pytest.raises(gb.ParameterError, match="route must be 'auto', 'compound' or 'cvforce'"):
         gbo.attach(system, [d], ok, route="fast")
     with pytest.raises(gb.ParameterError, match="cvs\\[0\\] must be a CV"):
         gbo.attach(system, [(0, 1, 2, 3)], ok)
