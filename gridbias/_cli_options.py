@@ -1,4 +1,4 @@
-"""Shared pieces of the ``gridbias`` command's parsers: one-line usage errors, wrapped help, option types.
+"""Shared pieces of the ``gridbias`` command: exit codes, its error, output checks, wrapped help, option types.
 
 Kept apart from ``gridbias.cli`` so that each command-line module stays small; only the command-line modules
 import it.
@@ -8,7 +8,45 @@ from __future__ import annotations
 
 import argparse
 import math
+import os
 import textwrap
+
+EXIT_OK = 0
+EXIT_FAILED = 1
+EXIT_BAD_INPUT = 2
+
+
+class CommandError(Exception):
+    """A failure to report as one line on stderr with the given exit code."""
+
+    def __init__(self, message: str, code: int = EXIT_BAD_INPUT):
+        super().__init__(message)
+        self.code = code
+
+
+def _check_outputs(paths, allowed, option, inputs=()):
+    """Check outputs up front (extension, folder, never an input or twice one file); [(path, format)]."""
+    from ._files import same_file
+
+    checked = []
+    for path in paths:
+        for other in [*inputs, *(p for p, _ in checked)]:
+            if same_file(path, other):
+                raise CommandError(f"{option} {path!r} is the same file as {other!r}: a command never writes over "
+                                   "a file it reads or writes twice; choose another output name")
+        ext = os.path.splitext(path)[1].lower().lstrip(".")
+        if ext not in allowed:
+            raise CommandError(f"{option} {path!r}: the file type is taken from the extension, which must be "
+                               f"one of {', '.join('.' + a for a in allowed)}")
+        folder = os.path.dirname(os.path.abspath(path))
+        if not os.path.isdir(folder):
+            raise CommandError(f"{option} {path!r}: the folder {folder!r} does not exist")
+        if os.path.isdir(path):
+            raise CommandError(f"{option} {path!r} is a folder, not a file name")
+        checked.append((path, ext))
+    return checked
+
+
 
 
 class _UsageError(Exception):

@@ -35,14 +35,19 @@ from ._advise_command import add_advise_command
 from ._cli_options import (
     _UNITS,
     _UNITS_NOTE,
+    EXIT_BAD_INPUT,
+    EXIT_FAILED,
+    EXIT_OK,
     MAX_BINS,
     MAX_BINS_TOTAL,
     MAX_LENGTH_NS,
     MAX_POINTS,
     MAX_SEED,
+    CommandError,
     _add_angle_unit,
     _add_frames,
     _burn_in,
+    _check_outputs,
     _count,
     _count_upto,
     _finite,
@@ -70,52 +75,15 @@ from .runs import load_run, log_column, read_log, run_frames
 
 __all__ = ["main", "build_parser", "CommandError"]
 
-EXIT_OK = 0
-EXIT_FAILED = 1
-EXIT_BAD_INPUT = 2
 
 #: Bins of a reweighted profile with fewer frames than this are flagged: a handful of visits gives
 #: neither a value nor an error bar to trust (common practice, no source).
 FEW_FRAMES = 20
 
 
-
-# ------------------------------------------------------------------------------------------------ errors
-class CommandError(Exception):
-    """A failure to report as one line on stderr with the given exit code."""
-
-    def __init__(self, message: str, code: int = EXIT_BAD_INPUT):
-        super().__init__(message)
-        self.code = code
-
-
 # -------------------------------------------------------------------------------------------- display
 def _fmt(x, digits=4) -> str:
     return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
-
-
-# -------------------------------------------------------------------------------------------- outputs
-def _check_outputs(paths, allowed, option, inputs=()):
-    """Check outputs up front (extension, folder, never an input or twice one file); [(path, format)]."""
-    from ._files import same_file
-
-    checked = []
-    for path in paths:
-        for other in [*inputs, *(p for p, _ in checked)]:
-            if same_file(path, other):
-                raise CommandError(f"{option} {path!r} is the same file as {other!r}: a command never writes over "
-                                   "a file it reads or writes twice; choose another output name")
-        ext = os.path.splitext(path)[1].lower().lstrip(".")
-        if ext not in allowed:
-            raise CommandError(f"{option} {path!r}: the file type is taken from the extension, which must be "
-                               f"one of {', '.join('.' + a for a in allowed)}")
-        folder = os.path.dirname(os.path.abspath(path))
-        if not os.path.isdir(folder):
-            raise CommandError(f"{option} {path!r}: the folder {folder!r} does not exist")
-        if os.path.isdir(path):
-            raise CommandError(f"{option} {path!r} is a folder, not a file name")
-        checked.append((path, ext))
-    return checked
 
 
 # ------------------------------------------------------------------------------------------------ inspect
