@@ -70,7 +70,7 @@ from .exports import (
     write_files,
 )
 from .frame_values import read_frame_values
-from .progress import ProgressLine
+from .progress import REBUILDING, REWEIGHTING, ProgressLine
 from .runs import load_run, log_column, read_log, run_frames
 
 __all__ = ["main", "build_parser", "CommandError"]
@@ -170,7 +170,7 @@ def _cmd_inspect(args) -> int:
 
     progress = ProgressLine()
     differences = analysis.basin_differences_from_bias(bias, basins, n_points=args.points,
-                                                        progress=progress.counter("replaying the hills"))
+                                                        progress=progress.counter(REBUILDING, "moments"))
     if basins.n_basins > 1:
         add("")
         add(differences.table())
@@ -178,7 +178,7 @@ def _cmd_inspect(args) -> int:
     if frames is not None and basins.n_basins > 1:
         t, cvs, logged_bias = frames
         kwargs = {"frame_bias": logged_bias} if logged_bias is not None else {"frame_cvs": cvs}
-        weights = analysis.offset_weights(bias, t, progress=progress.counter("reweighting the frames"),
+        weights = analysis.offset_weights(bias, t, progress=progress.counter(REWEIGHTING, "moments"),
                                           **kwargs)
         reweighted = analysis.basin_differences_from_frames(weights, t, cvs, basins, times=[t[-1]])
         add("")
@@ -321,7 +321,7 @@ def _cmd_reweight(args) -> int:
     progress = ProgressLine()
     if args.method == "offset":
         kwargs = {"frame_bias": logged_bias} if logged_bias is not None else {"frame_cvs": cvs}
-        weights = analysis.offset_weights(bias, t, progress=progress.counter("reweighting the frames"),
+        weights = analysis.offset_weights(bias, t, progress=progress.counter(REWEIGHTING, "moments"),
                                           **kwargs)
     else:
         burn_in = DEFAULT_BURN_IN_FRACTION if args.burn_in is None else args.burn_in
@@ -375,12 +375,29 @@ def _cmd_demo(args) -> int:
     from .demo.run import DemoSettings, run_demo
 
     settings = DemoSettings.from_options(mode=args.mode, quick=args.quick, length_ns=args.length,
-                                         platform=args.platform, seed=args.seed)
+                                         platform=args.platform, seed=args.seed, min_depth_kT=args.min_depth)
     result = run_demo(args.out, settings, fresh=args.fresh)
     return EXIT_OK if result.completed else EXIT_FAILED
 
 
 # ------------------------------------------------------------------------------------------------ parser
+def _demo_epilog() -> str:
+    """The demo's help epilog, written from its settings so that the two never disagree."""
+    from .demo.settings import MAX_LENGTH_NS, QUICK_LENGTH_NS, DemoSettings
+
+    d = DemoSettings()
+    return ("Modes: '2d' biases phi and psi; 'reweight' biases phi only and recovers the free energy along psi "
+            "by reweighting the CV log, compared with the 2d run's surface when that run is in the same --out "
+            "folder.\n"
+            f"Length: without --length the run stops when the convergence verdict holds (at most "
+            f"{MAX_LENGTH_NS:g} ns; a 2d run here stopped after 3.6 ns, about a minute on 2 cores); --quick runs "
+            f"{QUICK_LENGTH_NS:g} ns (under a minute), --length NS exactly that long.\n"
+            f"The run: {d.temperature:g} K, Langevin, 2 fs steps; hills of {d.height:g} kJ/mol (initial height) "
+            f"and {math.degrees(d.sigma):.0f} deg width every {d.stride} steps ({d.stride * 0.002:g} ps), bias "
+            f"factor {d.bias_factor:g}, a {d.bins}-bin grid per dihedral. gridbias/demo/settings.py says why.\n"
+            + _UNITS + "; angles in degrees.")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``gridbias`` command."""
     from . import __version__
@@ -405,12 +422,7 @@ def build_parser() -> argparse.ArgumentParser:
                     "Ctrl-C, then run the same command again to continue) and ends with a folder holding "
                     "the free-energy surface (npz, csv, png), convergence plots, the checkpoint, the CV log "
                     "and a text report.",
-        epilog="Modes: '2d' biases phi and psi (about 5 minutes on 2 cores; --quick about 1 minute). "
-               "'reweight' biases phi only and recovers the free energy along psi by reweighting the CV "
-               "log, compared with the 2d run's surface when that run is in the same --out folder.\n"
-               "The run: 300 K, Langevin, 2 fs steps; hills of 1.5 kJ/mol (initial height) and 20 deg width "
-               "every 0.5 ps, bias factor 6, a 96-bin grid per dihedral; 10 ns (--quick: 2 ns). "
-               "gridbias/demo/settings.py says why.\n" + _UNITS + "; angles in degrees.")
+        epilog=_demo_epilog())
     p.add_argument("--mode", choices=("2d", "reweight"), default="2d",
                    help="'2d': bias phi and psi; 'reweight': bias phi only and reweight to psi (default 2d)")
     p.add_argument("--quick", action="store_true", help="a shorter run (about a fifth of the length)")
@@ -427,6 +439,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="random seed for velocities and the thermostat (default 2024)")
     p.add_argument("--fresh", action="store_true",
                    help="discard this mode's earlier results in --out and start again")
+    p.add_argument("--min-depth", type=_positive, default=2.0, metavar="KBT",
+                   help="a minimum of the surface counts as a basin if it is this many kBT below its lowest "
+                        "saddle, else it merges into that neighbour (default 2; a finished run is analysed "
+                        "again with the new value)")
     p.set_defaults(handler=_cmd_demo)
 
     p = sub.add_parser(

@@ -6,7 +6,11 @@ import math
 import sys
 import time
 
-__all__ = ["ProgressLine", "format_duration"]
+__all__ = ["ProgressLine", "format_duration", "REBUILDING", "REWEIGHTING"]
+
+#: What the long analyses say they are doing (with ``ProgressLine.counter(..., "moments")``).
+REBUILDING = "free-energy differences along the run (the bias rebuilt at each moment)"
+REWEIGHTING = "reweighting the frames (the bias as it was at each moment)"
 
 
 class ProgressLine:
@@ -54,10 +58,10 @@ class ProgressLine:
         self._width = 0
         self._shown = False
 
-    def counter(self, what: str):
-        """A ``progress(done, total)`` callback for the analysis functions."""
+    def counter(self, what: str, unit: str = ""):
+        """A ``progress(done, total)`` callback for the analysis functions: "what: 30 of 40 unit"."""
         def report(done, total):
-            text = f"{what}: {done}/{total}"
+            text = f"{what}: {done:,} of {total:,}" + (f" {unit}" if unit else "")
             if done < total:
                 self.update(text)
             elif self._shown:

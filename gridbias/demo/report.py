@@ -13,6 +13,7 @@ from dataclasses import replace
 
 import numpy as np
 
+from ..progress import REBUILDING, REWEIGHTING
 from .settings import (
     BARRIERS,
     CHECKPOINT,
@@ -30,11 +31,19 @@ from .settings import (
 __all__ = ["analyse", "COMPARE_BELOW_KT", "COMPARE_MIN_FRAMES"]
 
 
+#: The first caution, by mode: what the CVs of that run can and cannot capture.
+_CV_CAUTION = {
+    "2d": "- The CVs. phi and psi describe this molecule's slow conformational motions in vacuum well; in "
+          "other systems a slow motion left out of the CVs shows up as hysteresis, overfilling and "
+          "differences that drift instead of settling.",
+    "reweight": "- The CV. Only phi is biased; F(psi) comes from reweighting, which is sound only while psi "
+                "crosses its own barriers often in the unbiased dynamics (the comparison with the 2d run "
+                "checks that here). In other systems a slow motion left out of the CVs shows up as "
+                "hysteresis, overfilling and differences that drift instead of settling.",
+}
+
 _CAUTIONS = (
     "What these numbers depend on:",
-    "- The CVs. phi and psi describe this molecule's slow conformational motions in vacuum well; in other "
-    "systems a slow motion left out of the CVs shows up as hysteresis, overfilling and differences that "
-    "drift instead of settling.",
     "- Convergence. The verdict's criteria are necessary, not sufficient: repeat the run with other seeds, "
     "hill widths and bias factors before trusting a number.",
     "- Sampling time. The error bars are block-analysis errors of one run; they assume the run is long "
@@ -132,7 +141,20 @@ def _convergence_figure(plots, differences, bias, t, cvs, names, window_fraction
     late = late[np.isfinite(late)]
     if late.size:
         margin = max(0.15 * (late.max() - late.min()), bias.kT)
-        axes[0].set_ylim(min(late.min(), 0.0) - margin, late.max() + 3 * margin)
+        low, high = min(late.min(), 0.0) - margin, late.max() + 3 * margin
+        axes[0].set_ylim(low, high)
+        # estimates beyond the scale are not dropped: each is marked at the edge it crosses, and counted
+        n_off = 0
+        for series in differences:
+            for column in series.differences.T:
+                for mask, edge, marker in ((column > high, high, "^"), (column < low, low, "v")):
+                    if mask.any():
+                        n_off += int(mask.sum())
+                        axes[0].plot(series.times[mask], np.full(int(mask.sum()), edge), linestyle="none",
+                                     marker=marker, markersize=6, color="#b5532b", clip_on=False)
+        if n_off:
+            axes[0].text(0.01, 0.03, f"{n_off} early estimate{'s' if n_off > 1 else ''} off this scale "
+                         "(marked at the edge)", transform=axes[0].transAxes, fontsize="small", color="#b5532b")
     axes[0].legend(frameon=False, ncols=2, loc="upper right", fontsize="small")
     axes[0].set_title("basin free-energy differences (the bias estimate, and reweighted frames with errors)",
                       loc="left", fontsize="medium")
@@ -169,7 +191,7 @@ def analyse(folder, settings, info, progress):
     log = read_log(os.path.join(folder, FRAMES))
     t, cvs, logged_bias, _ = run_frames(run, log)
     surface = analysis.surface_at(bias)
-    basins = analysis.find_basins(bias.grid, surface.free_energy, kT)
+    basins = analysis.find_basins(bias.grid, surface.free_energy, kT, min_depth_kT=settings.min_depth_kT)
     conformers = _conformers_in(basins)
     # Name each basin after the conformers in its catchment (e.g. "C7eq", or "C7eq/C5" along phi alone).
     named = tuple("/".join(held) or name for held, name in zip(conformers, basins.names, strict=True))
@@ -177,9 +199,9 @@ def analyse(folder, settings, info, progress):
     reference = _basin_of(conformers, "C7eq")
     reference = 0 if reference is None else reference
     weights = analysis.offset_weights(bias, t, frame_bias=logged_bias,
-                                      progress=progress.counter("reweighting the frames"))
+                                      progress=progress.counter(REWEIGHTING, "moments"))
     from_bias = analysis.basin_differences_from_bias(bias, basins, n_points=DEFAULT_N_POINTS, reference=reference,
-                                                     progress=progress.counter("replaying the hills"))
+                                                     progress=progress.counter(REBUILDING, "moments"))
     from_frames = analysis.basin_differences_from_frames(weights, t, cvs, basins, n_points=20,
                                                          reference=reference)
     verdict = analysis.assess_convergence(bias, basins, frame_times=t, frame_cvs=cvs, weights=weights,
@@ -301,6 +323,14 @@ def _report_text(settings, run, info, basins, conformers, surface, from_bias, fr
         lines.append(f"  {name:<9} {where}   {f_bias:8.2f} kJ/mol   {rw}")
     lines.append("  (basins are named after the conformers whose minima (CONFORMERS in gridbias/demo/settings.py) "
                  "lie in their catchment)")
+    lines.append(f"  (a minimum counts as a basin only if it lies at least {settings.min_depth_kT:g} kBT below the "
+                 "lowest saddle to a deeper one (--min-depth); a shallower one merges into that neighbour, so "
+                 "the set of basins can change as a run grows")
+    merged = [held for held in conformers if len(held) > 1]
+    if merged:
+        lines.append("   here " + "; ".join(f"{' and '.join(held[1:])} merged into {held[0]}" for held in merged)
+                     + ": its free energy counts in that basin. Compare runs basin by basin under the same "
+                       "names, or rerun the analysis with a smaller --min-depth to separate them)")
     axial, equatorial = _basin_of(conformers, "C7ax"), _basin_of(conformers, "C7eq")
     lines.append("")
     if axial is not None and equatorial is not None and axial != equatorial:
@@ -327,7 +357,7 @@ def _report_text(settings, run, info, basins, conformers, surface, from_bias, fr
     lines.append("")
     lines.append(verdict.render())
     lines.append("")
-    lines.extend(_CAUTIONS)
+    lines.extend([_CAUTIONS[0], _CV_CAUTION[settings.mode], *_CAUTIONS[1:]])
     lines.append("")
     folder = os.path.dirname(files[0])
     lines.append(f"files in {folder}: " + ", ".join(os.path.basename(f) for f in files)

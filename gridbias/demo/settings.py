@@ -105,6 +105,10 @@ class DemoSettings:
     stride : int
         Steps between hills (and between logged frames).
     checkpoint_every : int
+    min_depth_kT : float, kBT
+        Analysis only: a minimum of the final surface counts as a basin if it lies at least this far below
+        the lowest saddle to a deeper one; shallower minima merge into that neighbour (as in
+        ``analysis.find_basins``).
         Steps between checkpoints.
     """
 
@@ -120,6 +124,7 @@ class DemoSettings:
     bins: int = 96
     stride: int = 250
     checkpoint_every: int = 50_000
+    min_depth_kT: float = 2.0
 
     def __post_init__(self):
         if self.mode not in SUBFOLDERS:
@@ -127,16 +132,20 @@ class DemoSettings:
         if not (isinstance(self.length_ns, (int, float)) and math.isfinite(self.length_ns)
                 and self.length_ns > 0):
             raise ParameterError(f"length_ns must be a positive number of ns, got {self.length_ns!r}")
+        if not (isinstance(self.min_depth_kT, (int, float)) and math.isfinite(self.min_depth_kT)
+                and 1.0 < self.min_depth_kT <= 100.0):
+            raise ParameterError(f"min_depth_kT must be a number of kBT in (1, 100] (the basin cores span 1 "
+                                 f"kBT), got {self.min_depth_kT!r}")
 
     @classmethod
-    def from_options(cls, *, mode="2d", quick=False, length_ns=None, platform="auto", seed=2024):
+    def from_options(cls, *, mode="2d", quick=False, length_ns=None, platform="auto", seed=2024, min_depth_kT=2.0):
         """Settings from the command's options; ``length_ns`` overrides ``quick``; with neither, the run
         stops when converged (at most ``MAX_LENGTH_NS``)."""
         until_converged = length_ns is None and not quick
         if length_ns is None:
             length_ns = QUICK_LENGTH_NS if quick else MAX_LENGTH_NS
         return cls(mode=mode, length_ns=float(length_ns), until_converged=until_converged, platform=platform,
-                   seed=int(seed))
+                   seed=int(seed), min_depth_kT=float(min_depth_kT))
 
     @property
     def n_steps(self) -> int:

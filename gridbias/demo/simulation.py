@@ -67,23 +67,33 @@ def _choose_platform(requested, system, positions, stream, checkpoint_platform, 
     return name
 
 
-def _status_line(settings, step, bias, started_step, started, mode_name):
+def _status_line(settings, step, bias, since, mode_name):
+    """The progress line; ``since`` is (step, monotonic time) the speed is measured from, or None."""
     from .dipeptide import TIMESTEP
 
     ns = step * TIMESTEP / 1000.0
     total_ns = settings.n_steps * TIMESTEP / 1000.0
     recent = np.asarray(bias.history.heights[-10:])  # one hill's height depends on where the CV happens to be
-    height = f"{recent.mean():.3g} kJ/mol ({100 * recent.mean() / bias.height:.0f}%)" if recent.size else "-"
-    elapsed = time.monotonic() - started
-    done = step - started_step
-    rate = done / elapsed if elapsed > 0 and done > 0 else math.nan
-    eta = (settings.n_steps - step) / rate if rate > 0 else math.nan
+    # two significant digits: a well-tempered run's hills fall below 1 % of the initial height
+    height = f"{recent.mean():.3g} kJ/mol ({100 * recent.mean() / bias.height:.2g}% of the first)" \
+        if recent.size else "-"
+    # speed and time left from the steps since the first stretch: start-up (compiling, the first force
+    # evaluations) would make the first estimate far too long
+    rate = math.nan
+    if since is not None:
+        done, elapsed = step - since[0], time.monotonic() - since[1]
+        rate = done / elapsed if elapsed > 0 and done > 0 else math.nan
+    left = (settings.n_steps - step) / rate if rate > 0 else math.nan
     from ..progress import format_duration
 
-    speed = f"{rate * TIMESTEP * 86400 / 1000:,.0f} ns/day" if math.isfinite(rate) else "-"
-    total = f"until converged, at most {total_ns:g}" if settings.until_converged else f"{total_ns:g}"
-    return (f"{mode_name}: {ns:6.3f} / {total} ns | {bias.n_hills:,} hills | height {height} | "
-            f"{speed} | ETA {format_duration(eta)}")
+    speed = f"{rate * TIMESTEP * 86400 / 1000:,.0f} ns/day" if math.isfinite(rate) else "measuring speed"
+    if settings.until_converged:
+        total = f"until converged, at most {total_ns:g}"
+        eta = f"at most {format_duration(left)} left" if math.isfinite(left) else "time left: measuring"
+    else:
+        total = f"{total_ns:g}"
+        eta = f"{format_duration(left)} left" if math.isfinite(left) else "time left: measuring"
+    return f"{mode_name}: {ns:6.3f} / {total} ns | {bias.n_hills:,} hills | height {height} | {speed} | {eta}"
 
 
 def simulate(folder, settings, stream, progress) -> tuple[bool, int, dict]:
@@ -198,6 +208,7 @@ def _advance(simulation, link, reporter, checkpoint, settings, stream, progress,
     chunk = settings.stride * 20
     started_step = simulation.currentStep
     started = time.monotonic()
+    since = None  # speed measured from the end of the first stretch, past the start-up costs
     referee = Referee(_rules(settings), link.bias)
     frames_path = os.path.join(os.path.dirname(checkpoint), FRAMES)
     decision = None
@@ -212,9 +223,10 @@ def _advance(simulation, link, reporter, checkpoint, settings, stream, progress,
             simulation.step(referee.stretch(look(), chunk))
             decision = referee.decide(look(_frames(frames_path, link.labels(), reporter)))
             referee.restart_clock(simulation.currentStep)
-            progress.update(_status_line(settings, simulation.currentStep, link.bias, started_step, started,
-                                         mode_name))
-        line = _status_line(settings, simulation.currentStep, link.bias, started_step, started, mode_name)
+            progress.update(_status_line(settings, simulation.currentStep, link.bias, since, mode_name))
+            if since is None:
+                since = (simulation.currentStep, time.monotonic())
+        line = _status_line(settings, simulation.currentStep, link.bias, since, mode_name)
         # The frames logged so far reach the disk before the checkpoint that matches them (as the
         # adapter's reporter does before each of its checkpoints); the reporter keeps the checkpoint
         # locked until the final one is written.

@@ -352,7 +352,7 @@ def test_progress_line_stays_quiet_in_a_log_for_short_tasks():
     for k in range(1, 11):
         report(k, 10)
     assert stream.getvalue() == ""
-    slow = ProgressLine(stream, plain_interval=0.0).counter("replaying")
+    slow = ProgressLine(stream, plain_interval=0.0).counter("replaying", "moments")
     for k in range(1, 3):
         slow(k, 2)
-    assert stream.getvalue() == "replaying: 1/2\nreplaying: 2/2\n"
+    assert stream.getvalue() == "replaying: 1 of 2 moments\nreplaying: 2 of 2 moments\n"
