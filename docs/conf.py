@@ -68,7 +68,7 @@ sphinx_gallery_conf = {
     "download_all_examples": False,
     "remove_config_comments": True,
     "within_subsection_order": "FileNameSortKey",
-    "image_scrapers": ("matplotlib",),
+    "image_scrapers": ("matplotlib", "_gallery.png_scraper"),
     "abort_on_example_error": True,
 }
 

@@ -1,4 +1,8 @@
-"""A free-energy profile of a quantity nobody thought of before the run, from the run's DCD trajectory.
+"""
+A quantity computed after the run, from the trajectory
+======================================================
+
+A free-energy profile of a quantity nobody thought of before the run, from the run's DCD trajectory.
 
 Well-tempered metadynamics of the alanine dipeptide in vacuum, biased along phi only. Beside the bias
 reporter, OpenMM's own DCDReporter writes the coordinates every 1,000 steps (a multiple of the CV log's 250).

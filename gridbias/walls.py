@@ -55,7 +55,12 @@ class Wall:
             try:
                 value = float(value)
             except (TypeError, ValueError):
-                raise ParameterError(f"Wall {name} must be a number, got {value!r}") from None
+                hint = ""
+                if hasattr(value, "unit"):  # an openmm.unit quantity: the adapter converts those
+                    hint = (f" (a Wall takes plain numbers in the CV's unit; with the OpenMM adapter give the "
+                            f"wall as a dict, e.g. walls=[{{'cv': {self.cv}, '{name}': {value!r}, ...}}] in "
+                            "make_bias, which converts quantities)")
+                raise ParameterError(f"Wall {name} must be a number, got {value!r}{hint}") from None
             if not math.isfinite(value):
                 raise ParameterError(f"Wall {name} must be finite, got {value!r}")
             object.__setattr__(self, name, value)

@@ -66,3 +66,9 @@ def test_burn_in_without_the_final_method_is_refused(capsys, tmp_path):
     _, err = capsys.readouterr()
     assert code == 2
     assert "--burn-in applies to --method final only" in err
+
+
+def test_a_wall_given_a_quantity_says_how_the_adapter_takes_one():
+    unit = pytest.importorskip("openmm.unit")
+    with pytest.raises(gb.ParameterError, match=r"give the wall as a dict.*make_bias"):
+        gb.Wall(cv=1, bound=85 * unit.degree, k=100.0, side="above")

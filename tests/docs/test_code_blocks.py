@@ -1,10 +1,12 @@
 """Every Python block of the README and the user guide runs, page by page, as a reader would run it.
 
 The blocks of one page run in order in one namespace (a page reads like one script: the names a block uses
-are defined by a visible block above it). A block right after the comment ``<!-- not run: REASON -->`` is
-shown but not run (an MPI launch, say); the reason is required. Long MD in a block is cut short by
-``GRIDBIAS_DOCS_MAX_STEPS``: ``openmm.app.Simulation.step`` runs at most that many steps per call, so a
-page that asks for five million steps is checked in seconds with the same code.
+are defined by a visible block above it). A block right after ``<!-- run by tests/PATH.py -->`` is run by
+that test instead (on a run it makes for the block); the test must exist and read this page. A block right
+after ``<!-- not run: REASON -->`` is shown but not run (an MPI launch, say); the reason is required. A long
+MD call in a block (more than LONG_RUN steps) is cut to MAX_STEPS: ``openmm.app.Simulation.step`` is
+capped, so a page that asks for five million steps is checked in seconds with the same code; shorter calls
+run as written.
 """
 
 import re
@@ -15,18 +17,33 @@ import pytest
 ROOT = Path(__file__).resolve().parents[2]
 PAGES = [ROOT / "README.md", *sorted((ROOT / "docs").glob("**/*.md"))]
 PAGES = [p for p in PAGES if "_build" not in p.parts and "gallery" not in p.parts]
-_BLOCK = re.compile(r"(<!--\s*not run:\s*(?P<reason>[^>]*?)\s*-->\s*\n)?```python\n(?P<code>.*?)```", re.S)
+_BLOCK = re.compile(r"(<!--\s*(not run:\s*(?P<reason>[^>]*?)|run by\s+(?P<runner>\S+?))\s*-->\s*\n)?"
+                    r"```python\n(?P<code>.*?)```", re.S)
 MAX_STEPS = 200
+LONG_RUN = 100_000
 
 
 def python_blocks(path):
-    """(line, code, reason-not-run or None) of every ```python block of a Markdown file, in order."""
+    """(line, code, why it is not run here or None) of every ```python block of a Markdown file, in order."""
     text = path.read_text()
     blocks = []
     for match in _BLOCK.finditer(text):
         line = text.count("\n", 0, match.start("code")) + 1
-        blocks.append((line, match.group("code"), match.group("reason")))
+        elsewhere = match.group("reason")
+        if match.group("runner"):
+            elsewhere = f"run by {match.group('runner')}"
+        blocks.append((line, match.group("code"), elsewhere))
     return blocks
+
+
+def test_blocks_run_elsewhere_name_a_test_that_reads_the_page():
+    for page in PAGES:
+        for match in _BLOCK.finditer(page.read_text()):
+            runner = match.group("runner")
+            if runner:
+                test = ROOT / runner
+                assert test.is_file(), f"{page.name}: {runner} does not exist"
+                assert page.name in test.read_text(), f"{runner} does not read {page.name}"
 
 
 def test_pages_found():
@@ -42,7 +59,7 @@ def test_not_run_blocks_give_a_reason():
 
 @pytest.fixture
 def short_md(monkeypatch):
-    """Cap every Simulation.step call at MAX_STEPS steps (the page's code is unchanged)."""
+    """Cut every Simulation.step call longer than LONG_RUN to MAX_STEPS steps (the page's code is unchanged)."""
     try:
         from openmm import app
     except ImportError:
@@ -50,16 +67,17 @@ def short_md(monkeypatch):
     original = app.Simulation.step
 
     def capped(self, steps):
-        return original(self, min(int(steps), MAX_STEPS))
+        return original(self, MAX_STEPS if int(steps) > LONG_RUN else int(steps))
 
     monkeypatch.setattr(app.Simulation, "step", capped)
 
 
-@pytest.mark.parametrize("page", PAGES, ids=[str(p.relative_to(ROOT)) for p in PAGES])
+RUNNABLE = [p for p in PAGES if any(elsewhere is None for _, _, elsewhere in python_blocks(p))]
+
+
+@pytest.mark.parametrize("page", RUNNABLE, ids=[str(p.relative_to(ROOT)) for p in RUNNABLE])
 def test_page_blocks_run(page, tmp_path, monkeypatch, short_md):
     blocks = python_blocks(page)
-    if not any(reason is None for _, _, reason in blocks):
-        pytest.skip(f"{page.name} has no Python block to run")
     monkeypatch.chdir(tmp_path)
     monkeypatch.setenv("MPLBACKEND", "Agg")
     monkeypatch.setenv("GRIDBIAS_DOCS_MAX_STEPS", str(MAX_STEPS))
