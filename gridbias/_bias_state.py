@@ -121,7 +121,9 @@ def checked_bias(cls, meta, arrays):
     periodic = np.asarray(grid.periodic, dtype=bool)
     if periodic.any() and n:
         offset = np.abs(centers[:, periodic] - np.asarray(grid.lower)[periodic])
-        if (offset > _MAX_PERIODS * np.asarray(grid.span)[periodic]).any():
+        with np.errstate(over="ignore"):  # a span near the float limit: no centre is then too far
+            limit = _MAX_PERIODS * np.asarray(grid.span)[periodic]
+        if (offset > limit).any():
             raise CheckpointError(f"hill centres on periodic axes must lie within {_MAX_PERIODS} periods of "
                                   "the grid (further out their wrapped position is lost to rounding)")
     if not (np.isfinite(heights).all() and (heights >= 0).all()):

@@ -91,6 +91,9 @@ _fraction = _option_type(float, lambda x: 0 < x <= 1, "a number in (0, 1]", "a n
 _positive = _option_type(float, lambda x: math.isfinite(x) and x > 0, "a positive number", "a positive number")
 _count = _option_type(int, lambda n: n >= 1, "a whole number >= 1", "a whole number")
 _finite = _option_type(float, math.isfinite, "a finite number", "a number")
+# basins need a depth above the 1 kBT their cores span (analysis.find_basins); 100 kBT merges everything
+_min_depth = _option_type(float, lambda x: 1 < x <= 100, "a number of kBT above 1 (basin cores span 1 kBT) and at "
+                          "most 100", "a number of kBT")
 _burn_in = _option_type(float, lambda x: 0 <= x < 1, "a number in [0, 1)", "a number between 0 and 1")
 
 

@@ -53,6 +53,7 @@ from ._cli_options import (
     _finite,
     _Formatter,
     _fraction,
+    _min_depth,
     _names,
     _option_type,
     _Parser,
@@ -439,7 +440,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="random seed for velocities and the thermostat (default 2024)")
     p.add_argument("--fresh", action="store_true",
                    help="discard this mode's earlier results in --out and start again")
-    p.add_argument("--min-depth", type=_positive, default=2.0, metavar="KBT",
+    p.add_argument("--min-depth", type=_min_depth, default=2.0, metavar="KBT",
                    help="a minimum of the surface counts as a basin if it is this many kBT below its lowest "
                         "saddle, else it merges into that neighbour (default 2; a finished run is analysed "
                         "again with the new value)")
@@ -458,7 +459,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--log", metavar="CVLOG", help="the run's CV log (.gbl)")
     _add_frames(p)
     _add_angle_unit(p)
-    p.add_argument("--min-depth", type=_positive, default=2.0, metavar="KBT",
+    p.add_argument("--min-depth", type=_min_depth, default=2.0, metavar="KBT",
                    help="a minimum counts as a basin if it is this many kBT below its lowest saddle "
                         "(default 2)")
     p.add_argument("--drift", type=_positive, default=0.5, metavar="KBT",

@@ -72,3 +72,31 @@ def test_a_wall_given_a_quantity_says_how_the_adapter_takes_one():
     unit = pytest.importorskip("openmm.unit")
     with pytest.raises(gb.ParameterError, match=r"give the wall as a dict.*make_bias"):
         gb.Wall(cv=1, bound=85 * unit.degree, k=100.0, side="above")
+
+
+@pytest.mark.parametrize("command", ["inspect", "demo"])
+def test_min_depth_errors_name_the_option(capsys, command, angle_run):
+    path, _ = angle_run
+    argv = [command, str(path)] if command == "inspect" else [command]
+    code = main([*argv, "--min-depth", "0.5"])
+    err = capsys.readouterr().err
+    assert code == 2 and "argument --min-depth" in err and "min_depth_kT" not in err
+
+
+def test_demo_status_line_measures_speed_past_the_start_up_and_shows_small_heights():
+    import time
+
+    from gridbias.demo.settings import DemoSettings
+    from gridbias.demo.simulation import _status_line
+
+    grid = gb.Grid([-math.pi], [math.pi], [72], [True])
+    bias = gb.GridBias(grid, sigma=[0.3], height=1.5, temperature=300.0, bias_factor=2.0)
+    for _ in range(300):  # hills on one spot, bias factor 2: their heights fall far below 1 % of the first
+        bias.deposit([0.0])
+    settings = DemoSettings(length_ns=1.0)
+    first = _status_line(settings, 1000, bias, None, "phi-psi")
+    assert "measuring" in first and "ETA" not in first
+    share = 100 * np.mean(bias.history.heights[-10:]) / bias.height
+    assert share < 1 and f"({share:.2g}% of the first)" in first and "(0%)" not in first
+    later = _status_line(settings, 101_000, bias, (1000, time.monotonic() - 2.0), "phi-psi")
+    assert "ns/day" in later and "left" in later
