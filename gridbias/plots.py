@@ -509,10 +509,11 @@ def plot_crossing_profile(crossing, *, ax=None, kT: float | None = None, energy_
     at = x[int(np.argmax(np.all(np.isclose(crossing.path, crossing.saddle), axis=1)))]
     ax.axvline(at, color=_ACCENT, linewidth=1.0, linestyle="--", label="saddle point")
     a, b = crossing.basins
-    ax.annotate(a, (0.0, 0.0), xytext=(0, -14), textcoords="offset points", ha="center", color=_ACCENT,
+    # basin names just above the path's ends, inside the axes (below them they would sit on the axis line)
+    ax.annotate(a, (0.0, 0.0), xytext=(2, 9), textcoords="offset points", ha="left", color=_ACCENT,
                 fontweight="bold")
-    ax.annotate(b, (1.0, (top - crossing.barriers[1]) * factor), xytext=(0, -14), textcoords="offset points",
-                ha="center", color=_ACCENT, fontweight="bold")
+    ax.annotate(b, (1.0, (top - crossing.barriers[1]) * factor), xytext=(-2, 9), textcoords="offset points",
+                ha="right", color=_ACCENT, fontweight="bold")
     ax.set_title(f"{a} - {b}: barrier {crossing.barriers[0] * factor:.3g} {unit} from {a}, "
                  f"{crossing.barriers[1] * factor:.3g} from {b}", loc="left", fontsize="medium")
     ax.set_xlabel(f"progress along the minimum free-energy path ({a} = 0, {b} = 1)")

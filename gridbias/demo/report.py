@@ -162,7 +162,7 @@ def _convergence_figure(plots, differences, bias, t, cvs, names, window_fraction
     step = max(1, times.size // _MAX_DOTS)
     plots.plot_hill_heights(times[::step], heights[::step], ax=axes[1], initial_height=bias.height,
                             max_height_fraction=max_height_fraction)
-    axes[1].legend(frameon=True, framealpha=1.0, edgecolor="none", loc="upper right", fontsize="small")
+    axes[1].legend(frameon=True, framealpha=1.0, edgecolor="none", loc="lower left", fontsize="small")
     axes[1].set_title("hill heights" + (f" (every {step}th hill)" if step > 1 else ""), loc="left",
                       fontsize="medium")
     every = max(1, t.size // _MAX_DOTS)
@@ -325,10 +325,10 @@ def _report_text(settings, run, info, basins, conformers, surface, from_bias, fr
                  "lie in their catchment)")
     lines.append(f"  (a minimum counts as a basin only if it lies at least {settings.min_depth_kT:g} kBT below the "
                  "lowest saddle to a deeper one (--min-depth); a shallower one merges into that neighbour, so "
-                 "the set of basins can change as a run grows")
+                 "the set of basins can change as a run grows)")
     merged = [held for held in conformers if len(held) > 1]
     if merged:
-        lines.append("   here " + "; ".join(f"{' and '.join(held[1:])} merged into {held[0]}" for held in merged)
+        lines.append("  (here " + "; ".join(f"{' and '.join(held[1:])} merged into {held[0]}" for held in merged)
                      + ": its free energy counts in that basin. Compare runs basin by basin under the same "
                        "names, or rerun the analysis with a smaller --min-depth to separate them)")
     axial, equatorial = _basin_of(conformers, "C7ax"), _basin_of(conformers, "C7eq")
