@@ -42,7 +42,8 @@ def replay_cost(bias) -> int:
     grid = bias.grid
     footprint = 1
     for a in range(bias.ndim):
-        reach = bias.cutoff * bias.sigma[a] / grid.spacing[a]
+        with np.errstate(over="ignore"):  # an absurdly wide hill reaches the whole axis: inf is the answer
+            reach = bias.cutoff * bias.sigma[a] / grid.spacing[a]
         footprint *= min(grid.shape[a], 2 * int(min(reach, 1e9)) + 3)
     return bias.n_hills * footprint * 2**bias.ndim
 
