@@ -12,7 +12,7 @@ from ..errors import ParameterError
 from ..grid import Grid
 from ._checks import as_count, as_points, as_positive, frozen, same_length
 from ._grid_sums import log_quadrature
-from .basins import Basins
+from .basins import Basins, nearest_nodes
 from .blocking import DEFAULT_MIN_BLOCKS, blocking_curve
 from .reweighting import FrameWeights
 
@@ -230,19 +230,6 @@ def _progress(grid, route):
 
 
 # -------------------------------------------------------------------------------------------- frames
-def _nearest_nodes(grid, pts):
-    """Flat index of the nearest grid node of each point, -1 outside a non-periodic axis."""
-    idx = np.rint((pts - grid.lower) / grid.spacing).astype(np.int64)
-    inside = np.ones(pts.shape[0], dtype=bool)
-    for axis in range(grid.ndim):
-        if grid.periodic[axis]:
-            idx[:, axis] %= grid.bins[axis]
-        else:
-            inside &= (idx[:, axis] >= 0) & (idx[:, axis] <= grid.bins[axis])
-    idx = np.clip(idx, 0, np.array(grid.shape) - 1)
-    return np.where(inside, np.ravel_multi_index(tuple(idx.T), grid.shape), -1)
-
-
 class _NodeFrames:
     """Weighted populations of node cells and block errors of their free-energy differences.
 
@@ -259,7 +246,7 @@ class _NodeFrames:
         lw = weights.log_weights
         start = int(np.flatnonzero(used)[0])
         self.w = np.where(used[start:], np.exp(lw[start:] - lw[used].max()), 0.0)
-        self.node = _nearest_nodes(grid, cvs)[start:]
+        self.node = nearest_nodes(grid, cvs)[start:]
         self.log_q = log_quadrature(grid).ravel()
         self.table = table
         self.kT = weights.kT

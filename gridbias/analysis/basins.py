@@ -23,6 +23,19 @@ DEFAULT_MIN_DEPTH_KT = 2.0
 DEFAULT_CORE_KT = 1.0
 
 
+def nearest_nodes(grid: Grid, pts) -> np.ndarray:
+    """Flat index of the grid node nearest to each point (n, d), or -1 outside a non-periodic axis."""
+    idx = np.rint((pts - grid.lower) / grid.spacing).astype(np.int64)
+    inside = np.ones(pts.shape[0], dtype=bool)
+    for axis in range(grid.ndim):
+        if grid.periodic[axis]:
+            idx[:, axis] %= grid.bins[axis]
+        else:
+            inside &= (idx[:, axis] >= 0) & (idx[:, axis] <= grid.bins[axis])
+    idx = np.clip(idx, 0, np.array(grid.shape) - 1)
+    return np.where(inside, np.ravel_multi_index(tuple(idx.T), grid.shape), -1)
+
+
 @dataclass(frozen=True, eq=False)
 class Basins:
     """Named regions of CV space, labelled on the grid nodes.
@@ -71,17 +84,9 @@ class Basins:
             for b in range(self.n_basins):
                 out[_in_box(self.grid, pts, self.boxes[0][b], self.boxes[1][b])] = b
             return out
-        grid = self.grid
-        idx = np.rint((pts - grid.lower) / grid.spacing).astype(np.int64)
-        inside = np.ones(pts.shape[0], dtype=bool)
-        for axis in range(grid.ndim):
-            if grid.periodic[axis]:
-                idx[:, axis] %= grid.bins[axis]
-            else:
-                inside &= (idx[:, axis] >= 0) & (idx[:, axis] <= grid.bins[axis])
-        idx = np.clip(idx, 0, np.array(grid.shape) - 1)
-        table = self.cores if core else self.labels
-        return np.where(inside, table[tuple(idx.T)], -1)
+        flat = nearest_nodes(self.grid, pts)
+        table = np.asarray(self.cores if core else self.labels).ravel()
+        return np.where(flat >= 0, table[np.maximum(flat, 0)], -1)
 
 
 @dataclass(frozen=True, eq=False)
