@@ -45,7 +45,7 @@ simulation.context.setPositions(positions)
 simulation.reporters.append(link.reporter(stride=500, checkpoint=checkpoint, checkpoint_every=10_000,
                                           log=os.path.join(args.folder, "run.gbl")))
 
-# ... plus one line: continue from the checkpoint if there is one.
+# ... then continue from the checkpoint if there is one (and below, step only to the total length).
 if os.path.exists(checkpoint):
     meta = link.restore(simulation, checkpoint)
     print(f"continuing from step {meta.step} ({link.bias.n_hills} hills)")

@@ -3,13 +3,13 @@
 Add a few lines to an existing OpenMM script::
 
     from gridbias import openmm as gbo
-    cvs = [gbo.dihedral(4, 6, 8, 14), gbo.dihedral(6, 8, 14, 16)]
+    cvs = [gbo.dihedral(1, 6, 7, 8), gbo.dihedral(6, 7, 8, 16)]   # your atoms, 0-based
     link = gbo.attach(system, cvs, bias)            # before the Simulation (or Context) is created
     simulation = app.Simulation(topology, system, integrator, platform)
     simulation.reporters.append(link.reporter(stride=500, checkpoint="run.gbz", checkpoint_every=50_000))
-    simulation.step(5_000_000)
-    # after a crash, the same script plus one line continues exactly where the checkpoint left off:
-    link.restore(simulation, "run.gbz")
+    if os.path.exists("run.gbz"):                   # the same script continues after a crash or a queue limit
+        link.restore(simulation, "run.gbz")
+    simulation.step(total_steps - simulation.currentStep)
 
 OpenMM is imported only when it is needed (``attach``, ``from_force``, quantities); without it those
 calls raise ImportError naming ``pip install 'gridbias[openmm]'``.
