@@ -36,6 +36,7 @@ import numpy as np
 
 from ._series_files import Series, read_series
 from ._short_run import CVStatistics, measure_cv
+from .analysis._checks import as_positive
 from .analysis.convergence import DEFAULT_MAX_HEIGHT_FRACTION
 from .bias import KB, GridBias
 from .errors import ParameterError
@@ -224,16 +225,6 @@ def _per_cv(name, values, d, convert):
     return [None if v is None else convert(f"{name}[{i}]", v) for i, v in enumerate(seq)]
 
 
-def _positive(name, value, unit=""):
-    try:
-        x = float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} must be a number > 0 {unit}, got {value!r}".rstrip()) from None
-    if not (math.isfinite(x) and x > 0):
-        raise ParameterError(f"{name} must be finite and > 0 {unit}, got {value!r}".rstrip())
-    return x
-
-
 def _range(name, value):
     try:
         lo, hi = (float(v) for v in value)
@@ -305,15 +296,15 @@ def advise(cv_series, *, interval, temperature, timestep=None, names=None, units
     if n > MAX_FRAMES:
         raise ParameterError(f"{n:,} frames is not a short run (at most {MAX_FRAMES:,}): pass every k-th frame "
                              "with interval k times as long, or a shorter part of the run")
-    interval = _positive("interval", interval, "ps")
-    temperature = _positive("temperature", temperature, "K")
-    timestep = None if timestep is None else _positive("timestep", timestep, "ps")
+    interval = as_positive("interval", interval, "ps")
+    temperature = as_positive("temperature", temperature, "K")
+    timestep = None if timestep is None else as_positive("timestep", timestep, "ps")
     if timestep is not None and timestep > interval:
         raise ParameterError(f"timestep ({timestep} ps) must not exceed the frame interval ({interval} ps)")
-    periods = _per_cv("periods", periods, d, _positive)
+    periods = _per_cv("periods", periods, d, as_positive)
     ranges = _per_cv("cv_range", cv_range, d, _range)
-    barrier = None if barrier is None else _positive("barrier", barrier, "kJ/mol")
-    affordable_time = None if affordable_time is None else _positive("affordable_time", affordable_time, "ps")
+    barrier = None if barrier is None else as_positive("barrier", barrier, "kJ/mol")
+    affordable_time = None if affordable_time is None else as_positive("affordable_time", affordable_time, "ps")
     for i in range(d):
         if periods[i] is not None and ranges[i] is not None:
             raise ParameterError(f"cv_range[{i}] must be None: CV {names[i]!r} is periodic and its grid "

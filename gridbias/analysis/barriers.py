@@ -12,7 +12,7 @@ from ..errors import ParameterError
 from ..grid import Grid
 from ._checks import as_count, as_points, as_positive, frozen, same_length
 from ._grid_sums import log_quadrature
-from .basins import Basins, nearest_nodes
+from .basins import Basins, checked_surface, nearest_nodes
 from .blocking import DEFAULT_MIN_BLOCKS, blocking_curve
 from .reweighting import FrameWeights
 
@@ -332,18 +332,12 @@ def find_crossings(grid: Grid, free_energy, kT: float, basins: Basins, *, weight
     neighbours (3 grid spacings wide), so that it holds enough frames. The surface's own values carry
     the systematic errors of metadynamics (hills smooth a sharp saddle); compare both estimates.
     """
-    if not isinstance(grid, Grid):
-        raise ParameterError(f"grid must be a gridbias.Grid, got {type(grid).__name__}")
+    fes = checked_surface(grid, free_energy)
     if not isinstance(basins, Basins):
         raise ParameterError(f"basins must be Basins (from basins_from_boxes or find_basins), got "
                              f"{type(basins).__name__}")
     if basins.grid != grid:
         raise ParameterError(f"basins were defined on another grid: {grid.describe_difference(basins.grid)}")
-    fes = np.asarray(free_energy, dtype=float)
-    if fes.shape != tuple(grid.shape):
-        raise ParameterError(f"free_energy must have the grid's shape {tuple(grid.shape)}, got {fes.shape}")
-    if not np.isfinite(fes).all():
-        raise ParameterError("free_energy must be finite at every node (got NaN or inf)")
     kT = as_positive("kT", kT, "kJ/mol")
     min_blocks = as_count("min_blocks", min_blocks, 2)
     if (weights is None) != (frame_cvs is None):

@@ -268,6 +268,18 @@ def _saddles(grid, fes, roots):
     return a[first], b[first], h[first]
 
 
+def checked_surface(grid: Grid, free_energy) -> np.ndarray:
+    """``free_energy`` as a float array of ``grid.shape``, finite everywhere, or ParameterError."""
+    if not isinstance(grid, Grid):
+        raise ParameterError(f"grid must be a gridbias.Grid, got {type(grid).__name__}")
+    fes = np.asarray(free_energy, dtype=float)
+    if fes.shape != tuple(grid.shape):
+        raise ParameterError(f"free_energy must have the grid's shape {tuple(grid.shape)}, got {fes.shape}")
+    if not np.isfinite(fes).all():
+        raise ParameterError("free_energy must be finite at every node (got NaN or inf)")
+    return fes
+
+
 def find_basins(grid: Grid, free_energy, kT: float, *, min_depth_kT: float = DEFAULT_MIN_DEPTH_KT,
                 core_kT: float = DEFAULT_CORE_KT) -> Basins:
     """Minima of a free-energy surface and their catchment regions.
@@ -298,13 +310,7 @@ def find_basins(grid: Grid, free_energy, kT: float, *, min_depth_kT: float = DEF
     lowest over their shared node pairs of the higher node) whenever the shallower minimum lies less than
     ``min_depth_kT`` below the saddle. Flat regions (e.g. never visited) merge the same way.
     """
-    if not isinstance(grid, Grid):
-        raise ParameterError(f"grid must be a gridbias.Grid, got {type(grid).__name__}")
-    fes = np.asarray(free_energy, dtype=float)
-    if fes.shape != tuple(grid.shape):
-        raise ParameterError(f"free_energy must have the grid's shape {tuple(grid.shape)}, got {fes.shape}")
-    if not np.isfinite(fes).all():
-        raise ParameterError("free_energy must be finite at every node (got NaN or inf)")
+    fes = checked_surface(grid, free_energy)
     kT = as_positive("kT", kT, "kJ/mol")
     min_depth = as_positive("min_depth_kT", min_depth_kT, "kBT") * kT
     core = as_positive("core_kT", core_kT, "kBT") * kT
